@@ -1,0 +1,246 @@
+"""Routes of /v1/analyses: translate HTTP to the pipeline (tables → records → archive) and back."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Path, Query, Request
+from starlette.concurrency import run_in_threadpool
+from starlette.responses import JSONResponse, Response
+
+from service.api.bodies import BodyKind, body_kind, read_body
+from service.api.problems import ProblemError, problem_responses
+from service.api.schemas import AnalysisPage, AnalysisRecord
+from service.archive import Archive
+from service.bundles import build_bundle
+from service.config import ServiceSettings
+from service.records import build_record
+from service.reports import render_report
+from service.tables import (
+    InvalidRequest,
+    Problem,
+    normalize_request,
+    parse_csv_body,
+    parse_json_body,
+)
+
+# The report is self-contained (inline CSS and SVG, no script): forbid everything else.
+REPORT_SECURITY_POLICY = (
+    "default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 'none'; "
+    "form-action 'none'; frame-ancestors 'none'"
+)
+
+# Flat query parameters of a CSV upload (validated by service.tables, listed here for the schema).
+CSV_QUERY_PARAMETERS: dict[str, tuple[str, str]] = {
+    "title": ("string", "study title"),
+    "analyte": ("string", "what was measured"),
+    "unit": ("string", "unit of the values"),
+    "test": ("string", "treatment label of the test arm"),
+    "reference": ("string", "treatment label of the reference arm"),
+    "baseline": ("string", "treatment label of the baseline/placebo arm, if any"),
+    "replicates": ("integer", "bootstrap replicates"),
+    "seed": ("integer", "seed of the resampling"),
+    "confidence_level": ("number", "confidence level of the intervals, e.g. 0.9"),
+    "interval": ("string", "percentile, basic, normal or bca"),
+    "limit_lower": ("number", "lower acceptance limit of the ratio parameter"),
+    "limit_upper": ("number", "upper acceptance limit of the ratio parameter"),
+    "stratify_by_sequence": ("boolean", "resample within sequence groups"),
+    "incomplete_subjects": ("string", "exclude or reject"),
+}
+
+ID_PATTERN = "^[0-9a-f]{32}$"
+
+
+def archive_of(request: Request) -> Archive:
+    archive: Archive = request.app.state.archive
+    return archive
+
+
+ArchiveDep = Annotated[Archive, Depends(archive_of)]
+AnalysisId = Annotated[str, Path(description="archive identifier of the analysis")]
+
+
+def build_router(settings: ServiceSettings) -> APIRouter:
+    router = APIRouter(prefix="/v1/analyses", tags=["analyses"])
+
+    @router.post(
+        "",
+        status_code=201,
+        response_model=AnalysisRecord,
+        summary="Analyse a crossover table and archive the record",
+        responses={
+            201: {"description": "the archived record; `Location` names it"},
+            **problem_responses(400, 413, 415, 422, 500),
+        },
+        openapi_extra={
+            "requestBody": _request_body_schema(),
+            "parameters": [
+                {
+                    "name": name,
+                    "in": "query",
+                    "required": False,
+                    "description": f"CSV uploads only: {text}",
+                    "schema": {"type": kind},
+                }
+                for name, (kind, text) in CSV_QUERY_PARAMETERS.items()
+            ],
+        },
+    )
+    async def create_analysis(request: Request, archive: ArchiveDep) -> Response:
+        kind = body_kind(request.headers.get("content-type"))
+        query = _single_query_values(request)
+        body = await read_body(request, settings.max_body_bytes)
+        # Parsing, resampling and the archive write are blocking: keep them off the event loop.
+        stored = await run_in_threadpool(_analyse_and_archive, archive, settings, kind, body, query)
+        return JSONResponse(
+            stored, status_code=201, headers={"Location": f"/v1/analyses/{stored['id']}"}
+        )
+
+    @router.get(
+        "",
+        response_model=AnalysisPage,
+        summary="List archived analyses in the order they were created",
+        responses=problem_responses(422),
+    )
+    def list_analyses(
+        archive: ArchiveDep,
+        # Defaults, not Annotated metadata: the bounds come from settings in this closure, and
+        # string annotations (PEP 563) cannot see closure variables.
+        inputs_sha256: str | None = Query(  # noqa: B008 - FastAPI parameter declaration
+            None, pattern="^[0-9a-f]{64}$", description="only records with these inputs"
+        ),
+        limit: int = Query(  # noqa: B008
+            settings.page_size, ge=1, le=settings.max_page_size, description="page size"
+        ),
+        offset: int = Query(0, ge=0, description="records to skip"),  # noqa: B008
+    ) -> Response:
+        items, total = archive.list(inputs_sha256=inputs_sha256, limit=limit, offset=offset)
+        return JSONResponse({"items": items, "total": total})
+
+    @router.get(
+        "/{analysis_id}",
+        response_model=AnalysisRecord,
+        summary="One archived analysis",
+        responses=problem_responses(404),
+    )
+    def get_analysis(analysis_id: AnalysisId, archive: ArchiveDep) -> Response:
+        return JSONResponse(_stored(archive, analysis_id))
+
+    @router.get(
+        "/{analysis_id}/report",
+        response_class=Response,
+        summary="The HTML audit report of an analysis",
+        description="Rendered from the archived record on every request; the record is "
+        "immutable, so the bytes are identical each time.",
+        responses={
+            200: {"content": {"text/html": {"schema": {"type": "string"}}}},
+            **problem_responses(404),
+        },
+    )
+    def get_report(analysis_id: AnalysisId, archive: ArchiveDep) -> Response:
+        # Rendered from the stored record on each request: the record text is immutable and
+        # render_report is a pure function of it, so the bytes are the same every time.
+        html = render_report(_stored(archive, analysis_id))
+        return Response(
+            html,
+            media_type="text/html; charset=utf-8",
+            headers={"Content-Security-Policy": REPORT_SECURITY_POLICY},
+        )
+
+    @router.get(
+        "/{analysis_id}/bundle",
+        response_class=Response,
+        summary="A zip of inputs.json, record.json, report.html and a manifest of their hashes",
+        responses={
+            200: {"content": {"application/zip": {"schema": {"type": "string"}}}},
+            **problem_responses(404),
+        },
+    )
+    def get_bundle(analysis_id: AnalysisId, archive: ArchiveDep) -> Response:
+        record = _stored(archive, analysis_id)
+        bundle = build_bundle(record, render_report(record))
+        return Response(
+            bundle,
+            media_type="application/zip",
+            headers={
+                "Content-Disposition": f'attachment; filename="bioparity-{record["id"]}.zip"'
+            },
+        )
+
+    return router
+
+
+def _analyse_and_archive(
+    archive: Archive,
+    settings: ServiceSettings,
+    kind: BodyKind,
+    body: bytes,
+    query: Mapping[str, str],
+) -> dict[str, Any]:
+    if kind == "csv":
+        raw = parse_csv_body(body, query)
+    else:
+        if query:
+            raise InvalidRequest(
+                [
+                    Problem(("query", name), "query parameters are read only with text/csv "
+                            "uploads; put settings in the JSON body")
+                    for name in sorted(query)
+                ]
+            )
+        raw = parse_json_body(body)
+    _check_row_count(raw, settings.max_records)
+    record = build_record(normalize_request(raw))
+    return archive.insert(record, submitter=settings.submitter)
+
+
+def _check_row_count(raw: Any, max_records: int) -> None:
+    if not isinstance(raw, dict):
+        return  # normalize_request reports the wrong type
+    problems = [
+        Problem((field,), f"has {len(rows)} rows; this service accepts at most {max_records}")
+        for field in ("records", "profiles")
+        if isinstance(rows := raw.get(field), list) and len(rows) > max_records
+    ]
+    if problems:
+        raise InvalidRequest(problems)
+
+
+def _single_query_values(request: Request) -> dict[str, str]:
+    values: dict[str, str] = {}
+    repeated: list[str] = []
+    for name, value in request.query_params.multi_items():
+        if name in values and name not in repeated:
+            repeated.append(name)
+        values[name] = value
+    if repeated:
+        raise InvalidRequest(
+            [Problem(("query", name), "given more than once") for name in sorted(repeated)]
+        )
+    return values
+
+
+def _stored(archive: Archive, analysis_id: str) -> dict[str, Any]:
+    record = archive.get(analysis_id)
+    if record is None:
+        raise ProblemError(
+            404,
+            "no analysis with this id",
+            # Echo at most a short prefix of what the client sent.
+            [(["path", "analysis_id"], f"unknown analysis {analysis_id[:64]!r}")],
+        )
+    return record
+
+
+def _request_body_schema() -> dict[str, Any]:
+    return {
+        "required": True,
+        "content": {
+            "application/json": {"schema": {"$ref": "#/components/schemas/AnalysisRequest"}},
+            "text/csv": {
+                "schema": {"type": "string"},
+                "example": "subject,period,sequence,treatment,metric,value\n",
+            },
+        },
+    }

@@ -1,0 +1,97 @@
+"""Service settings: one frozen class, built explicitly (never at import time)."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+# Relative to the current working directory of the process that starts the service, so
+# `python -m service serve` run from the checkout keeps its archive in ./var/.
+DEFAULT_DATABASE_URL = "sqlite:///./var/bioparity.sqlite3"
+
+ENVIRONMENT_PREFIX = "BIOPARITY_"
+
+
+@dataclass(frozen=True)
+class ServiceSettings:
+    """Everything the HTTP service needs to know, with defaults suitable for one machine.
+
+    database_url     SQLAlchemy URL of the archive; default an SQLite file ./var/bioparity.sqlite3
+                     relative to the current directory (the directory is created on first use).
+    max_body_bytes   largest accepted request body (checked on Content-Length and on bytes read).
+    max_records      largest number of rows (records plus profile points) in one request.
+    page_size        default `limit` of GET /v1/analyses; max_page_size is its upper bound.
+    submitter        the name archived with each record until requests carry an identity.
+    busy_timeout_ms  how long an SQLite writer waits for the lock before failing.
+    """
+
+    database_url: str = DEFAULT_DATABASE_URL
+    max_body_bytes: int = 10 * 1024 * 1024
+    max_records: int = 200_000
+    page_size: int = 50
+    max_page_size: int = 500
+    submitter: str = "unauthenticated"
+    busy_timeout_ms: int = 10_000
+
+    def __post_init__(self) -> None:
+        if self.max_body_bytes < 1:
+            raise ValueError(f"max_body_bytes must be at least 1, got {self.max_body_bytes}")
+        if self.max_records < 1:
+            raise ValueError(f"max_records must be at least 1, got {self.max_records}")
+        if not 1 <= self.page_size <= self.max_page_size:
+            raise ValueError(
+                f"page_size must lie in 1..max_page_size ({self.max_page_size}), "
+                f"got {self.page_size}"
+            )
+        if not self.submitter.strip():
+            raise ValueError("submitter must be a non-empty name")
+
+    @classmethod
+    def from_cli(cls, db: str | None) -> ServiceSettings:
+        """Settings for `serve --db VALUE`; without --db, the environment or the default applies."""
+        base = cls.from_env()
+        if db is None:
+            return base
+        return replace(base, database_url=database_url_from_argument(db))
+
+    @classmethod
+    def from_env(cls, environ: Mapping[str, str] | None = None) -> ServiceSettings:
+        """Read BIOPARITY_DATABASE_URL, BIOPARITY_MAX_BODY_BYTES, ... (for --factory workers)."""
+        env = os.environ if environ is None else environ
+        values: dict[str, str | int] = {}
+        for name, kind in _FIELD_KINDS.items():
+            raw = env.get(ENVIRONMENT_PREFIX + name.upper())
+            if raw is None or raw == "":
+                continue
+            if kind is int:
+                try:
+                    values[name] = int(raw)
+                except ValueError:
+                    raise ValueError(
+                        f"{ENVIRONMENT_PREFIX}{name.upper()} must be an integer, got {raw!r}"
+                    ) from None
+            else:
+                values[name] = raw
+        if "database_url" in values:
+            values["database_url"] = database_url_from_argument(str(values["database_url"]))
+        return cls(**values)  # type: ignore[arg-type]
+
+
+_FIELD_KINDS: dict[str, type] = {
+    "database_url": str,
+    "max_body_bytes": int,
+    "max_records": int,
+    "page_size": int,
+    "max_page_size": int,
+    "submitter": str,
+    "busy_timeout_ms": int,
+}
+
+
+def database_url_from_argument(value: str) -> str:
+    """A SQLAlchemy URL passes through; a plain file path becomes sqlite:///ABSOLUTE-PATH."""
+    if "://" in value:
+        return value
+    return "sqlite:///" + str(Path(value).expanduser().resolve())

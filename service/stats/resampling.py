@@ -1,0 +1,333 @@
+"""Jackknife and bootstrap for smooth functions of per-subject means.
+
+``data`` is an (n subjects × k columns) float array; ``statistic`` maps a (..., k) array of column
+means to estimates (...). Subjects are resampled as whole rows. Replicates whose statistic is not
+finite (e.g. a zero denominator) are excluded from every quantile, mean and standard error, and
+counted in ``nonfinite_replicates``.
+
+Random subject indices: one ``numpy.random.SeedSequence(seed)`` per analysis, one child (PCG64) per
+stratum. Each stratum's generator yields a stream of 32-bit words; a word x is accepted when
+x < n_s·q with q = ⌊2³²/n_s⌋ and mapped to x // q, which is exactly uniform on 0..n_s−1 (a rejected
+word, probability < n_s/2³², is skipped). Replicate b takes the next n_s accepted values of each
+stratum's stream in order, so the chunk size never changes a number.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.stats import intervals as iv
+
+FloatArray = NDArray[np.float64]
+MeansStatistic = Callable[[FloatArray], FloatArray]
+
+# About this many subject indices per chunk keeps every chunk array cache-sized (512 kB as
+# float64) and lets the allocator reuse them instead of faulting in fresh pages each chunk.
+CHUNK_INDICES = 1 << 16
+_WORD = 1 << 32
+# Replicates per floating-point block; chunks are whole numbers of blocks (chunk_size rounds up).
+BLOCK = 128
+
+
+@dataclass(frozen=True)
+class Diagnostic:
+    code: str
+    message: str
+
+
+@dataclass(frozen=True)
+class Jackknife:
+    """Quenouille 1956 / Tukey 1958 jackknife. ``values`` are θ(i) in row order (None where the
+    leave-one-out statistic is undefined); the summaries are None unless every θ(i) is finite."""
+
+    values: tuple[float | None, ...]
+    mean: float | None
+    bias: float | None
+    standard_error: float | None
+    bias_corrected: float | None
+
+
+@dataclass(frozen=True)
+class MonteCarloError:
+    """Jackknife-after-bootstrap (Efron 1992, JRSS-B 54:83–127)."""
+
+    standard_error_of_standard_error: float | None
+    standard_error_of_bias: float | None
+    min_replicates_omitting_subject: int
+
+
+@dataclass(frozen=True)
+class Histogram:
+    edges: tuple[float, ...]
+    counts: tuple[int, ...]
+
+
+@dataclass(frozen=True)
+class Intervals:
+    percentile: iv.Interval | None
+    basic: iv.Interval | None
+    normal: iv.Interval | None
+    bca: iv.Interval | None
+
+
+@dataclass(frozen=True)
+class Bootstrap:
+    replicates: int
+    seed: int
+    finite_replicates: int
+    nonfinite_replicates: int
+    bias: float | None
+    standard_error: float | None
+    intervals: Intervals
+    z0: float | None
+    acceleration: float | None
+    monte_carlo: MonteCarloError
+    histogram: Histogram
+    diagnostics: tuple[Diagnostic, ...]
+    distribution: FloatArray  # the finite replicate values, in replicate order
+
+
+def leave_one_out_values(data: FloatArray, statistic: MeansStatistic) -> FloatArray:
+    """θ(i) = g((S − X_i)/(n − 1)), S = column sums: all n leave-one-out means at once."""
+    n = data.shape[0]
+    means = (data.sum(axis=0) - data) / (n - 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.asarray(statistic(means), dtype=np.float64)
+
+
+def jackknife(data: FloatArray, statistic: MeansStatistic, theta_hat: float) -> Jackknife:
+    return summarise_jackknife(leave_one_out_values(data, statistic), theta_hat)
+
+
+def summarise_jackknife(values: FloatArray, theta_hat: float) -> Jackknife:
+    listed = tuple(float(v) if math.isfinite(v) else None for v in values)
+    if not np.all(np.isfinite(values)):
+        return Jackknife(listed, None, None, None, None)
+    n = values.size
+    mean = float(values.mean())
+    bias = (n - 1) * (mean - theta_hat)  # Efron & Tibshirani 1993 eq. 11.8
+    se = math.sqrt((n - 1) / n * float(np.sum((values - mean) ** 2)))  # eq. 11.5
+    return Jackknife(listed, mean, bias, se, theta_hat - bias)
+
+
+class _IndexStream:
+    """Exactly uniform integers in [0, size) from one generator, consumed in order."""
+
+    def __init__(self, generator: np.random.Generator, size: int) -> None:
+        self._bits = generator.bit_generator
+        self._size = size
+        self._q = _WORD // size
+        self._limit = self._q * size
+        self._left = np.empty(0, dtype=np.uint32)
+
+    def _accepted(self, count: int) -> NDArray[np.uint32]:
+        words = np.asarray(self._bits.random_raw((count + 1) // 2), dtype="<u8").view("<u4")
+        words = words.astype(np.uint32, copy=False)
+        if self._limit != _WORD and bool(np.any(words >= self._limit)):
+            words = words[words < self._limit]
+        return words
+
+    def take(self, count: int) -> NDArray[np.uint32]:
+        """The next ``count`` values, as uint32."""
+        parts = [self._left] if self._left.size else []
+        have = self._left.size
+        while have < count:
+            words = self._accepted(count - have)
+            parts.append(words)
+            have += words.size
+        words = parts[0] if len(parts) == 1 else np.concatenate(parts)
+        self._left = words[count:].copy()
+        return words[:count] // np.uint32(self._q)
+
+
+def _strata_members(n: int, strata: NDArray[np.int64] | None) -> list[NDArray[np.intp]]:
+    if strata is None:
+        return [np.arange(n, dtype=np.intp)]
+    return [np.flatnonzero(strata == code).astype(np.intp) for code in np.unique(strata)]
+
+
+def default_chunk_size(n: int) -> int:
+    return max(BLOCK, CHUNK_INDICES // n)
+
+
+def _round_to_blocks(chunk: int) -> int:
+    return -(-chunk // BLOCK) * BLOCK
+
+
+def bootstrap(
+    data: FloatArray,
+    statistic: MeansStatistic,
+    *,
+    theta_hat: float,
+    jackknife_values: FloatArray,
+    replicates: int,
+    seed: int,
+    confidence_level: float,
+    strata: NDArray[np.int64] | None = None,
+    chunk_size: int | None = None,
+    histogram_bins: int = 40,
+) -> Bootstrap:
+    """Nonparametric bootstrap of subjects (Efron & Tibshirani 1993 ch. 6) with all intervals
+    and the jackknife-after-bootstrap Monte-Carlo errors. Inputs must already be validated."""
+    n, _ = data.shape
+    members = _strata_members(n, strata)
+    children = np.random.SeedSequence(seed).spawn(len(members))
+    streams = [
+        _IndexStream(np.random.Generator(np.random.PCG64(child)), m.size)
+        for child, m in zip(children, members, strict=True)
+    ]
+    chunk = _round_to_blocks(chunk_size if chunk_size is not None else default_chunk_size(n))
+    offsets = (np.arange(chunk, dtype=np.intp) * n)[:, None]
+    ones = np.ones(chunk * n, dtype=np.float64)  # bincount weights: float64 counts in one pass
+    theta_star = np.empty(replicates, dtype=np.float64)
+    # Per subject i: Σ over replicates omitting i of [1, θ*−θ̂, (θ*−θ̂)²] (finite replicates only).
+    omitted = np.zeros((3, n), dtype=np.float64)
+    single = strata is None
+    done = 0
+    while done < replicates:
+        c = min(chunk, replicates - done)
+        if single:
+            index = streams[0].take(c * n).astype(np.intp).reshape(c, n)
+        else:
+            index = np.empty((c, n), dtype=np.intp)
+            start = 0
+            for stream, m in zip(streams, members, strict=True):
+                draws = stream.take(c * m.size).reshape(c, m.size)
+                index[:, start : start + m.size] = m[draws]
+                start += m.size
+        index += offsets[:c]
+        # Offset indices make one bincount give every replicate's subject counts.
+        counts = np.bincount(index.ravel(), weights=ones[: c * n], minlength=c * n).reshape(c, n)
+        absent = np.empty((c, n), dtype=np.float64)
+        np.equal(counts, 0.0, out=absent, casting="unsafe")
+        theta = _chunk_statistic(counts, absent, data, statistic, theta_hat, omitted)
+        theta_star[done : done + c] = theta
+        done += c
+    return _summarise(
+        theta_star, omitted, theta_hat, jackknife_values, replicates, seed,
+        confidence_level, histogram_bins,
+    )
+
+
+def _blocks(c: int) -> list[slice]:
+    """Whole blocks first (one batched product), then the short tail block, if any."""
+    full = c - c % BLOCK
+    parts = [slice(0, full)] if full else []
+    return parts + ([slice(full, c)] if full < c else [])
+
+
+def _chunk_statistic(
+    counts: FloatArray, absent: FloatArray, data: FloatArray, statistic: MeansStatistic,
+    theta_hat: float, omitted: FloatArray,
+) -> FloatArray:
+    # Products run per fixed block of BLOCK replicates (batched matmul calls one gemm per block)
+    # and block sums are added in replicate order, so no floating-point sum depends on where a
+    # chunk ends; elementwise steps are exact per replicate anyway.
+    n = data.shape[0]
+    means = np.empty((counts.shape[0], data.shape[1]), dtype=np.float64)
+    for part in _blocks(counts.shape[0]):
+        rows = part.stop - part.start
+        size = min(rows, BLOCK)
+        stacked = counts[part].reshape(rows // size, size, n)
+        means[part] = (stacked @ data).reshape(rows, -1)
+    means /= n
+    with np.errstate(divide="ignore", invalid="ignore"):
+        theta = np.asarray(statistic(means), dtype=np.float64)
+    finite = np.isfinite(theta)
+    centred = np.where(finite, theta - theta_hat, 0.0)
+    weights = np.stack([finite.astype(np.float64), centred, centred * centred], axis=-1)
+    for part in _blocks(counts.shape[0]):
+        rows = part.stop - part.start
+        size = min(rows, BLOCK)
+        w = weights[part].reshape(rows // size, size, 3).transpose(0, 2, 1)
+        for partial in w @ absent[part].reshape(rows // size, size, n):
+            omitted += partial
+    return theta
+
+
+def _monte_carlo(
+    omitted: FloatArray, theta_hat: float, jackknife_values: FloatArray
+) -> tuple[MonteCarloError, list[Diagnostic]]:
+    n = omitted.shape[1]
+    m, s1, s2 = omitted
+    fewest = int(m.min())
+    if fewest < 2 or not np.all(np.isfinite(jackknife_values)):
+        message = (
+            f"only {fewest} replicates omit some subject: the Monte-Carlo errors need at least 2"
+            if fewest < 2
+            else "a leave-one-out value is undefined: no Monte-Carlo errors"
+        )
+        return MonteCarloError(None, None, fewest), [Diagnostic("too_few_replicates", message)]
+    # Bootstrap SE and bias recomputed from the replicates that omit subject i, Efron 1992 §3.
+    variance = np.maximum(s2 - s1 * s1 / m, 0.0) / (m - 1)
+    se_i = np.sqrt(variance)
+    bias_i = (theta_hat + s1 / m) - jackknife_values
+    factor = (n - 1) / n
+    se_se = math.sqrt(factor * float(np.sum((se_i - se_i.mean()) ** 2)))
+    se_bias = math.sqrt(factor * float(np.sum((bias_i - bias_i.mean()) ** 2)))
+    return MonteCarloError(se_se, se_bias, fewest), []
+
+
+def _summarise(
+    theta_star: FloatArray,
+    omitted: FloatArray,
+    theta_hat: float,
+    jackknife_values: FloatArray,
+    replicates: int,
+    seed: int,
+    confidence_level: float,
+    histogram_bins: int,
+) -> Bootstrap:
+    diagnostics: list[Diagnostic] = []
+    finite = np.isfinite(theta_star)
+    distribution = theta_star[finite] if not finite.all() else theta_star
+    nonfinite = replicates - distribution.size
+    if nonfinite:
+        diagnostics.append(Diagnostic(
+            "nonfinite_replicates",
+            f"{nonfinite} of {replicates} replicates had a zero denominator and were left out",
+        ))
+    empty = Intervals(None, None, None, None)
+    if distribution.size < 2:
+        diagnostics.append(Diagnostic("too_few_replicates", "fewer than 2 finite replicates"))
+        return Bootstrap(replicates, seed, distribution.size, nonfinite, None, None, empty, None,
+                         None, MonteCarloError(None, None, 0), Histogram((), ()),
+                         tuple(diagnostics), distribution)
+    bias = float(distribution.mean()) - theta_hat
+    se = float(distribution.std(ddof=1))
+    bca = iv.bca_interval(distribution, theta_hat, jackknife_values, confidence_level)
+    if not bca.acceleration_defined:
+        diagnostics.append(Diagnostic(
+            "acceleration_undefined",
+            "the jackknife values are all equal or undefined: BCa uses acceleration 0",
+        ))
+    if bca.problem is not None:
+        diagnostics.append(Diagnostic("bca_undefined", f"no BCa interval: {bca.problem}"))
+    elif bca.interval is not None and bca.interval.levels is not None:
+        low, high = bca.interval.levels
+        if low < 1.0 / distribution.size or high > 1.0 - 1.0 / distribution.size:
+            diagnostics.append(Diagnostic(
+                "too_few_replicates",
+                f"BCa levels {low:.3g}, {high:.3g} are beyond what {distribution.size} "
+                "replicates resolve",
+            ))
+    percentile = iv.percentile_interval(distribution, confidence_level)
+    intervals = Intervals(
+        percentile=percentile,
+        basic=iv.reflect(percentile, theta_hat),
+        normal=iv.normal_interval(theta_hat, bias, se, confidence_level),
+        bca=bca.interval,
+    )
+    monte_carlo, problems = _monte_carlo(omitted, theta_hat, jackknife_values)
+    diagnostics.extend(problems)
+    counts, edges = np.histogram(distribution, bins=histogram_bins)
+    histogram = Histogram(tuple(float(e) for e in edges), tuple(int(c) for c in counts))
+    return Bootstrap(
+        replicates, seed, int(distribution.size), nonfinite, bias, se, intervals, bca.z0,
+        bca.acceleration, monte_carlo, histogram, tuple(diagnostics), distribution,
+    )

@@ -1,0 +1,63 @@
+"""The application factory: nothing happens at import, the default archive lands in ./var."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from service.app import create_app
+from service.archive import ArchiveError
+from service.config import ServiceSettings
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def test_import_creates_nothing(tmp_path: Path) -> None:
+    """Importing service.app opens no database: no ./var appears (app-factory pattern,
+    common practice; checked in a fresh interpreter so no earlier import hides it)."""
+    environment = {**os.environ, "PYTHONPATH": str(ROOT)}
+    environment.pop("BIOPARITY_DATABASE_URL", None)
+    completed = subprocess.run(
+        [sys.executable, "-c", "import service.app"],
+        cwd=tmp_path, env=environment, capture_output=True, timeout=60, check=False,
+    )
+    assert completed.returncode == 0, completed.stderr.decode()
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_default_archive_is_relative_to_cwd(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Without settings the archive is ./var/bioparity.sqlite3 under the current directory
+    (SQLAlchemy 2 docs: sqlite:///relative/path is relative to the working directory)."""
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("BIOPARITY_DATABASE_URL", raising=False)
+    app = create_app()
+    try:
+        assert (tmp_path / "var" / "bioparity.sqlite3").is_file()
+    finally:
+        app.state.archive.close()
+
+
+def test_factory_reads_environment(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """`uvicorn --factory` workers get their archive from BIOPARITY_DATABASE_URL (the
+    twelve-factor convention of configuration in the environment, common practice)."""
+    target = tmp_path / "from-env.sqlite3"
+    monkeypatch.setenv("BIOPARITY_DATABASE_URL", str(target))
+    app = create_app()
+    try:
+        assert target.is_file()
+        assert app.state.settings.database_url == f"sqlite:///{target}"
+    finally:
+        app.state.archive.close()
+
+
+def test_unusable_database_url_is_a_clear_error() -> None:
+    """A URL naming no installed database driver fails with the URL in the message
+    (SQLAlchemy raises NoSuchModuleError, wrapped as ArchiveError)."""
+    with pytest.raises(ArchiveError, match="nosuch://"):
+        create_app(ServiceSettings(database_url="nosuch://somewhere"))

@@ -1,0 +1,128 @@
+"""The archive below the API: durability settings, the hash chain, concurrent appends."""
+
+from __future__ import annotations
+
+import hashlib
+import sqlite3
+import threading
+from pathlib import Path
+from typing import Any
+
+import pytest
+import rfc8785
+
+from service.archive import Archive, ArchiveError
+from service.config import DEFAULT_DATABASE_URL, ServiceSettings, database_url_from_argument
+
+
+def small_record(i: int) -> dict[str, Any]:
+    inputs: dict[str, Any] = {
+        "records": [{"subject": f"S{i:02d}", "value": 0.1 * i}], "settings": {"seed": i}
+    }
+    return {
+        "inputs_sha256": hashlib.sha256(rfc8785.dumps(inputs)).hexdigest(),
+        "inputs": inputs,
+        "result": {"metrics": [], "warnings": [], "engine": {"name": "bioparity"}},
+    }
+
+
+@pytest.fixture
+def archive(tmp_path: Path) -> Any:
+    store = Archive.create(f"sqlite:///{tmp_path / 'store' / 'a.sqlite3'}")
+    yield store
+    store.close()
+
+
+def test_sqlite_file_layout_and_pragmas(archive: Archive, tmp_path: Path) -> None:
+    """WAL journal and one schema_version row = 1 (SQLite documentation, sqlite.org/wal.html and
+    sqlite.org/pragma.html#pragma_journal_mode: WAL mode persists in the database file)."""
+    archive.insert(small_record(1))
+    with sqlite3.connect(tmp_path / "store" / "a.sqlite3") as raw:
+        assert raw.execute("PRAGMA journal_mode").fetchone() == ("wal",)
+        assert raw.execute("SELECT version FROM schema_version").fetchall() == [(1,)]
+        columns = [row[1] for row in raw.execute("PRAGMA table_info(records)")]
+    assert columns == [
+        "seq", "id", "created_at", "inputs_sha256", "inputs", "result", "engine", "submitter",
+        "record_sha256", "previous_record_sha256",
+    ]
+
+
+def test_stored_text_is_canonical(archive: Archive, tmp_path: Path) -> None:
+    """The inputs column holds the RFC 8785 text (rfc8785 package), so its SHA-256 (hashlib)
+    is the inputs hash."""
+    record = small_record(3)
+    stored = archive.insert(record, submitter="lab-7")
+    with sqlite3.connect(tmp_path / "store" / "a.sqlite3") as raw:
+        inputs_text, submitter = raw.execute("SELECT inputs, submitter FROM records").fetchone()
+    assert inputs_text.encode() == rfc8785.dumps(record["inputs"])
+    assert hashlib.sha256(inputs_text.encode()).hexdigest() == stored["inputs_sha256"]
+    assert submitter == stored["submitter"] == "lab-7"
+    assert archive.get(stored["id"]) == stored
+
+
+def test_mismatched_inputs_hash_is_refused(archive: Archive) -> None:
+    """A record whose hash is not SHA-256 of its canonical inputs (RFC 8785) is not archived."""
+    record = small_record(4)
+    record["inputs_sha256"] = "0" * 64
+    with pytest.raises(ValueError, match="inputs_sha256"):
+        archive.insert(record)
+    assert archive.list()[1] == 0
+
+
+def test_concurrent_appends_form_one_chain(archive: Archive) -> None:
+    """Writers on several threads still yield one unbroken chain: each record's predecessor
+    hash is the record just before it (hash chain, common practice; SQLite BEGIN IMMEDIATE,
+    sqlite.org/lang_transaction.html)."""
+    threads = [threading.Thread(target=archive.insert, args=(small_record(i),)) for i in range(16)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    items, total = archive.list(limit=100)
+    assert total == 16
+    previous = None
+    for item in items:
+        assert item["previous_record_sha256"] == previous
+        chained = {key: item[key] for key in ("inputs_sha256", "result", "created_at", "submitter")}
+        chained["previous_record_sha256"] = previous
+        assert item["record_sha256"] == hashlib.sha256(rfc8785.dumps(chained)).hexdigest()
+        previous = item["record_sha256"]
+    assert archive.verify_chain() == []
+
+
+def test_tampering_is_detected(archive: Archive, tmp_path: Path) -> None:
+    """Changing a stored result breaks its record hash (SHA-256 collision resistance,
+    FIPS 180-4)."""
+    for i in range(3):
+        archive.insert(small_record(i))
+    with sqlite3.connect(tmp_path / "store" / "a.sqlite3") as raw:
+        raw.execute("UPDATE records SET result = '{\"metrics\":[]}' WHERE seq = 2")
+    breaks = archive.verify_chain()
+    assert [(b.seq, b.problem) for b in breaks] == [(2, "record hash mismatch")]
+
+
+def test_open_requires_an_archive(tmp_path: Path) -> None:
+    """open() does not invent an empty archive where none exists (common practice)."""
+    with pytest.raises(ArchiveError, match="no archive"):
+        Archive.open(f"sqlite:///{tmp_path / 'missing.sqlite3'}")
+    Archive.create(f"sqlite:///{tmp_path / 'made.sqlite3'}").close()
+    reopened = Archive.open(f"sqlite:///{tmp_path / 'made.sqlite3'}")
+    assert reopened.list() == ([], 0)
+    reopened.close()
+
+
+def test_database_argument(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A plain path becomes an absolute sqlite:/// URL; URLs pass through (SQLAlchemy 2 docs,
+    "Database URLs": sqlite:///ABSOLUTE-PATH has the path after the third slash)."""
+    monkeypatch.chdir(tmp_path)
+    assert database_url_from_argument("x/a.db") == f"sqlite:///{tmp_path / 'x' / 'a.db'}"
+    assert database_url_from_argument("postgresql://u@h/db") == "postgresql://u@h/db"
+    assert DEFAULT_DATABASE_URL == "sqlite:///./var/bioparity.sqlite3"
+    assert ServiceSettings().database_url == DEFAULT_DATABASE_URL
+    assert ServiceSettings.from_cli("b.db").database_url == f"sqlite:///{tmp_path / 'b.db'}"
+    env = {"BIOPARITY_DATABASE_URL": "c.db", "BIOPARITY_MAX_BODY_BYTES": "99"}
+    from_env = ServiceSettings.from_env(env)
+    assert from_env.database_url == f"sqlite:///{tmp_path / 'c.db'}"
+    assert from_env.max_body_bytes == 99
+    with pytest.raises(ValueError, match="BIOPARITY_MAX_RECORDS"):
+        ServiceSettings.from_env({"BIOPARITY_MAX_RECORDS": "many"})
