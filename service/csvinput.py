@@ -9,7 +9,7 @@ from __future__ import annotations
 import csv
 import io
 import re
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 from service.problems import InvalidRequest, Problem, decode_utf8
@@ -135,6 +135,22 @@ def _read_row(
 
 
 def parse_csv_body(body: bytes, query: Mapping[str, str]) -> dict[str, Any]:
+    return parse_csv_with_lines(body, query)[0]
+
+
+def relocate_to_lines(problems: Sequence[Problem], lines: Sequence[int]) -> list[Problem]:
+    """Name CSV lines instead of record positions in problems found after parsing."""
+    moved = []
+    for problem in problems:
+        loc = problem.loc
+        if len(loc) >= 2 and loc[0] == "records" and isinstance(loc[1], int) and loc[1] < len(lines):
+            loc = ("line", lines[loc[1]], *loc[2:])
+        moved.append(Problem(loc, problem.msg))
+    return moved
+
+
+def parse_csv_with_lines(body: bytes, query: Mapping[str, str]) -> tuple[dict[str, Any], list[int]]:
+    """The raw request and, per record, the physical line (1-based, header = 1) it came from."""
     problems: list[Problem] = []
     raw: dict[str, Any] = {"design": {}}
     _parse_query(query, raw, problems)
@@ -148,6 +164,7 @@ def parse_csv_body(body: bytes, query: Mapping[str, str]) -> dict[str, Any]:
     decimal_comma = delimiter in (";", "\t")
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
     records: list[dict[str, Any]] = []
+    lines: list[int] = []
     names: list[str] | None = None
     last_line = 0
     try:
@@ -166,6 +183,7 @@ def parse_csv_body(body: bytes, query: Mapping[str, str]) -> dict[str, Any]:
                                                         f"has {len(names)} columns"))
                 continue
             records.append(_read_row(line, names, cells, decimal_comma, problems))
+            lines.append(line)
     except csv.Error as exc:
         problems.append(Problem(("line", reader.line_num), f"cannot be read as CSV: {exc}"))
     if not records and not problems:
@@ -174,4 +192,4 @@ def parse_csv_body(body: bytes, query: Mapping[str, str]) -> dict[str, Any]:
     if problems:
         raise InvalidRequest(problems)
     raw["records"] = records
-    return raw
+    return raw, lines

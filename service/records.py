@@ -45,7 +45,6 @@ def build_record(inputs: dict[str, Any]) -> dict[str, Any]:
 
 
 def compute_result(inputs: dict[str, Any]) -> dict[str, Any]:
-    settings = inputs["settings"]
     warnings: list[dict[str, Any]] = []
     derived = derive_profile_metrics(inputs)
     tables = build_tables(inputs, extra_records=derived.records)
@@ -67,8 +66,18 @@ def compute_result(inputs: dict[str, Any]) -> dict[str, Any]:
     if inputs.get("profiles"):
         result["profiles"] = derived.profiles
         result["profile_rules"] = derived.rules
-    _check_finite(result, ("result",))
-    _ = settings
+    found: list[str] = []
+    result = _replace_nonfinite(result, ("result",), found)
+    if found:
+        result["warnings"].append(
+            {
+                "code": "figures_not_computable",
+                "metric": None,
+                "message": "these figures overflowed floating-point arithmetic and are null: "
+                + ", ".join(found[:20])
+                + (f" and {len(found) - 20} more" if len(found) > 20 else ""),
+            }
+        )
     return result
 
 
@@ -222,14 +231,16 @@ def _per_subject(table: MetricTable, ratio_json: Mapping[str, Any]) -> list[dict
     return rows
 
 
-def _check_finite(obj: Any, loc: tuple[str | int, ...]) -> None:
-    """A last guard: the contract forbids NaN/Infinity anywhere in a record."""
-    if isinstance(obj, float):
-        if not math.isfinite(obj):
-            raise ValueError(f"non-finite number at {loc}")
-    elif isinstance(obj, Mapping):
-        for key, value in obj.items():
-            _check_finite(value, (*loc, str(key)))
-    elif isinstance(obj, list | tuple):
-        for i, value in enumerate(obj):
-            _check_finite(value, (*loc, i))
+def _replace_nonfinite(
+    obj: Any, loc: tuple[str | int, ...], found: list[str]
+) -> Any:
+    """A last guard: the contract forbids NaN/Infinity anywhere in a record. Any figure that
+    overflowed becomes null and is listed, so the record stays valid JSON and says so."""
+    if isinstance(obj, float) and not math.isfinite(obj):
+        found.append(".".join(str(part) for part in loc))
+        return None
+    if isinstance(obj, dict):
+        return {key: _replace_nonfinite(value, (*loc, key), found) for key, value in obj.items()}
+    if isinstance(obj, list):
+        return [_replace_nonfinite(value, (*loc, i), found) for i, value in enumerate(obj)]
+    return obj

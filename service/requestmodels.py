@@ -32,10 +32,16 @@ def _label(text: str) -> str:
     return text
 
 
+MAX_MAGNITUDE = 1e100
+
+
 def _finite(value: float) -> float:
     if not math.isfinite(value):
         shown = "NaN" if math.isnan(value) else ("Infinity" if value > 0 else "-Infinity")
         raise ValueError(f"must be a finite number, got {shown}")
+    if abs(value) > MAX_MAGNITUDE:
+        # Sums of squares and cubes of such values overflow double precision; no assay reports them.
+        raise ValueError(f"must be at most {MAX_MAGNITUDE:g} in magnitude, got {value:g}")
     return float(value)
 
 

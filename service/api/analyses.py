@@ -15,13 +15,13 @@ from service.api.schemas import AnalysisPage, AnalysisRecord
 from service.archive import Archive
 from service.bundles import build_bundle
 from service.config import ServiceSettings
+from service.csvinput import parse_csv_with_lines, relocate_to_lines
 from service.records import build_record
 from service.reports import render_report
 from service.tables import (
     InvalidRequest,
     Problem,
     normalize_request,
-    parse_csv_body,
     parse_json_body,
 )
 
@@ -178,8 +178,9 @@ def _analyse_and_archive(
     body: bytes,
     query: Mapping[str, str],
 ) -> dict[str, Any]:
+    lines: list[int] | None = None
     if kind == "csv":
-        raw = parse_csv_body(body, query)
+        raw, lines = parse_csv_with_lines(body, query)
     else:
         if query:
             raise InvalidRequest(
@@ -191,7 +192,13 @@ def _analyse_and_archive(
             )
         raw = parse_json_body(body)
     _check_row_count(raw, settings.max_records)
-    record = build_record(normalize_request(raw))
+    try:
+        inputs = normalize_request(raw)
+    except InvalidRequest as exc:
+        if lines is None:
+            raise
+        raise InvalidRequest(relocate_to_lines(exc.problems, lines)) from None
+    record = build_record(inputs)
     return archive.insert(record, submitter=settings.submitter)
 
 

@@ -42,12 +42,23 @@ def tail_alpha(confidence_level: float) -> float:
     return (1.0 - confidence_level) / 2.0
 
 
+def quantile_intervals(
+    distribution: FloatArray, levels: list[tuple[float, float]]
+) -> list[Interval]:
+    """Intervals read at several (low, high) level pairs with one quantile pass."""
+    flat = np.array([p for pair in levels for p in pair], dtype=np.float64)
+    q = np.quantile(distribution, flat, method="linear")
+    out = []
+    for i, pair in enumerate(levels):
+        lower, upper = float(q[2 * i]), float(q[2 * i + 1])
+        tails = (int(np.count_nonzero(distribution < lower)),
+                 int(np.count_nonzero(distribution > upper)))
+        out.append(Interval(lower, upper, pair, tails))
+    return out
+
+
 def _quantile_interval(distribution: FloatArray, low: float, high: float) -> Interval:
-    q = np.quantile(distribution, np.array([low, high]), method="linear")
-    lower, upper = float(q[0]), float(q[1])
-    tails = (int(np.count_nonzero(distribution < lower)),
-             int(np.count_nonzero(distribution > upper)))
-    return Interval(lower, upper, (low, high), tails)
+    return quantile_intervals(distribution, [(low, high)])[0]
 
 
 def percentile_interval(distribution: FloatArray, confidence_level: float) -> Interval:
@@ -121,16 +132,31 @@ def bca_interval(
 ) -> BcaOutcome:
     """BCa interval (Efron 1987, JASA 82:171–185). An undefined acceleration falls back to
     a = 0, i.e. the bias-corrected percentile interval, reported via ``acceleration_defined``."""
+    return percentile_and_bca(distribution, theta_hat, jackknife_values, confidence_level)[1]
+
+
+def percentile_and_bca(
+    distribution: FloatArray,
+    theta_hat: float,
+    jackknife_values: FloatArray,
+    confidence_level: float,
+) -> tuple[Interval, BcaOutcome]:
+    """The percentile and BCa intervals from a single quantile pass over the replicates."""
+    alpha = tail_alpha(confidence_level)
     z0 = bias_correction(distribution, theta_hat)
     a = acceleration(jackknife_values)
     defined = a is not None
     a_used = a if a is not None else 0.0
+    levels = None if z0 is None else bca_levels(z0, a_used, confidence_level)
+    pairs = [(alpha, 1.0 - alpha)] + ([levels] if levels is not None else [])
+    read = quantile_intervals(distribution, pairs)
     if z0 is None:
-        return BcaOutcome(None, None, a_used, defined, "all replicates lie on one side of theta")
-    levels = bca_levels(z0, a_used, confidence_level)
+        problem = "all replicates lie on one side of theta"
+        return read[0], BcaOutcome(None, None, a_used, defined, problem)
     if levels is None:
-        return BcaOutcome(None, z0, a_used, defined, "the acceleration is too large for this level")
-    return BcaOutcome(_quantile_interval(distribution, *levels), z0, a_used, defined, None)
+        problem = "the acceleration is too large for this level"
+        return read[0], BcaOutcome(None, z0, a_used, defined, problem)
+    return read[0], BcaOutcome(read[1], z0, a_used, defined, None)
 
 
 def bca_from_parts(

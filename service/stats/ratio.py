@@ -84,10 +84,10 @@ def _validate(
     elif not np.all(np.isfinite(values)):
         rows = sorted({int(r) for r in np.argwhere(~np.isfinite(values))[:, 0]})
         problems.append(f"values: rows {rows} hold a non-finite number")
-    if replicates < 2:
-        problems.append(f"replicates: must be at least 2, got {replicates}")
-    if seed < 0:
-        problems.append(f"seed: must be a non-negative integer, got {seed}")
+    if not _is_integer(replicates) or replicates < 2:
+        problems.append(f"replicates: must be an integer of at least 2, got {replicates!r}")
+    if not _is_integer(seed) or seed < 0:
+        problems.append(f"seed: must be a non-negative integer, got {seed!r}")
     if not 0.0 < confidence_level < 1.0:
         problems.append(
             f"confidence_level: must lie strictly between 0 and 1, got {confidence_level}")
@@ -103,6 +103,10 @@ def _validate(
         problems.append(f"histogram_bins: must be positive, got {histogram_bins}")
     if problems:
         raise ValueError("; ".join(problems))
+
+
+def _is_integer(value: object) -> bool:
+    return isinstance(value, int | np.integer) and not isinstance(value, bool)
 
 
 def fieller_interval(y: FloatArray, z: FloatArray, confidence_level: float) -> Fieller:

@@ -192,7 +192,8 @@ def bootstrap(
     while done < replicates:
         c = min(chunk, replicates - done)
         if single:
-            index = streams[0].take(c * n).astype(np.intp).reshape(c, n)
+            index = np.empty((c, n), dtype=np.intp)
+            np.add(streams[0].take(c * n).reshape(c, n), offsets[:c], out=index)
         else:
             index = np.empty((c, n), dtype=np.intp)
             start = 0
@@ -200,9 +201,10 @@ def bootstrap(
                 draws = stream.take(c * m.size).reshape(c, m.size)
                 index[:, start : start + m.size] = m[draws]
                 start += m.size
-        index += offsets[:c]
+            index += offsets[:c]
         # Offset indices make one bincount give every replicate's subject counts.
-        counts = np.bincount(index.ravel(), weights=ones[: c * n], minlength=c * n).reshape(c, n)
+        tally = np.bincount(index.ravel(), weights=ones[: c * n], minlength=c * n)
+        counts = np.asarray(tally, dtype=np.float64).reshape(c, n)  # already float64: no copy
         absent = np.empty((c, n), dtype=np.float64)
         np.equal(counts, 0.0, out=absent, casting="unsafe")
         theta = _chunk_statistic(counts, absent, data, statistic, theta_hat, omitted)
@@ -300,7 +302,8 @@ def _summarise(
                          tuple(diagnostics), distribution)
     bias = float(distribution.mean()) - theta_hat
     se = float(distribution.std(ddof=1))
-    bca = iv.bca_interval(distribution, theta_hat, jackknife_values, confidence_level)
+    percentile, bca = iv.percentile_and_bca(distribution, theta_hat, jackknife_values,
+                                            confidence_level)
     if not bca.acceleration_defined:
         diagnostics.append(Diagnostic(
             "acceleration_undefined",
@@ -316,7 +319,6 @@ def _summarise(
                 f"BCa levels {low:.3g}, {high:.3g} are beyond what {distribution.size} "
                 "replicates resolve",
             ))
-    percentile = iv.percentile_interval(distribution, confidence_level)
     intervals = Intervals(
         percentile=percentile,
         basic=iv.reflect(percentile, theta_hat),

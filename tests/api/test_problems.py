@@ -146,6 +146,28 @@ def test_csv_problems_name_lines(client: ApiClient) -> None:
     assert ["query", "replicates"] in locations
 
 
+def test_csv_table_problems_name_lines(client: ApiClient) -> None:
+    """Problems found after parsing (an unknown treatment, a duplicate period) still name the CSV
+    line, skipping the blank line (header = line 1, RFC 4180 §2)."""
+    body = (
+        b"subject,period,treatment,value\n"
+        b"S01,1,T,1.0\n"
+        b"\n"
+        b"S01,2,X,2.0\n"
+        b"S01,1,R,3.0\n"
+    )
+    response = client.post(
+        "/v1/analyses",
+        content=body,
+        params={"test": "T", "reference": "R"},
+        headers={"Content-Type": "text/csv"},
+    )
+    details = problem(response, 422)
+    locations = [error["loc"] for error in details["errors"]]
+    assert ["line", 4, "treatment"] in locations, locations
+    assert ["line", 5, "period"] in locations, locations
+
+
 def test_query_with_json_body_is_422(client: ApiClient) -> None:
     """Settings in the query are read only for CSV; with JSON they are refused, not ignored
     (a silently dropped seed would break reproducibility, common practice)."""

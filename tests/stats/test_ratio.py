@@ -179,3 +179,26 @@ def test_nonfinite_replicates_are_counted() -> None:
     assert boot.finite_replicates + boot.nonfinite_replicates == 20_000
     codes = {d.code for d in out.diagnostics}  # type: ignore[attr-defined]
     assert "nonfinite_replicates" in codes
+
+
+def test_json_carries_every_contract_path() -> None:
+    """Source: DESIGN.md §Record, the public `ratio_of_mean_differences` paths (rename or move
+    none); intervals are {lower, upper} objects and every number is a finite plain float."""
+    out = _json(_study(16, 2), replicates=500)
+    assert set(out["estimate"]) == {"theta", "numerator_mean", "denominator_mean"}  # type: ignore[arg-type]
+    jack = out["jackknife"]
+    assert {"bias", "standard_error", "bias_corrected", "values"} <= set(jack)  # type: ignore[arg-type]
+    assert jack["values"][0]["subject"] == "P00"  # type: ignore[index]
+    boot = out["bootstrap"]
+    assert {"replicates", "seed", "bias", "standard_error", "intervals", "monte_carlo",
+            "histogram"} <= set(boot)  # type: ignore[arg-type]
+    assert set(boot["intervals"]) == {"percentile", "basic", "normal", "bca"}  # type: ignore[index]
+    assert set(boot["intervals"]["bca"]) == {"lower", "upper"}  # type: ignore[index]
+    assert {"standard_error_of_standard_error", "standard_error_of_bias"} <= set(
+        boot["monte_carlo"])  # type: ignore[index]
+    hist = boot["histogram"]  # type: ignore[index]
+    assert sum(hist["counts"]) == 500 and len(hist["edges"]) == len(hist["counts"]) + 1
+    assert set(out["fieller"]) == {"kind", "lower", "upper"}  # type: ignore[arg-type]
+    assert {"limits", "interval", "confidence_level", "lower", "upper", "verdict",
+            "reason"} <= set(out["acceptance"])  # type: ignore[arg-type]
+    assert out["acceptance"]["limits"] == {"lower": -0.2, "upper": 0.2}  # type: ignore[index]
