@@ -29,11 +29,19 @@ def main(argv: list[str] | None = None) -> int:
     )
     serve.add_argument("--workers", type=int, default=1)
 
+    from service.admin_cli import add_commands, run_archive, run_keys
+
+    add_commands(commands)
+
     args = parser.parse_args(argv)
     if args.command == "analyze":
         return run_analyze(args.request, Path(args.out))
     if args.command == "serve":
         return run_serve(args.host, args.port, args.db, args.workers)
+    if args.command == "keys":
+        return run_keys(args)
+    if args.command == "archive":
+        return run_archive(args)
     parser.error(f"unknown command {args.command}")
     return EXIT_INVALID
 
@@ -65,12 +73,31 @@ def run_analyze(request: str, out: Path) -> int:
 
 
 def run_serve(host: str, port: int, db: str | None, workers: int) -> int:
-    import uvicorn
+    from dataclasses import replace
 
+    from service.access import is_loopback
+    from service.admin_cli import access_at_start
+    from service.archive import ArchiveError
     from service.config import ServiceSettings
 
     settings = ServiceSettings.from_cli(db)
     print(f"bioparity: archive {settings.database_url}", flush=True)
+    # Decided before uvicorn is even imported, so a refusal never binds the port.
+    try:
+        may_start, message = access_at_start(host, settings.database_url)
+    except ArchiveError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_INVALID
+    print(message, file=sys.stdout if may_start else sys.stderr, flush=True)
+    if not may_start:
+        return EXIT_INVALID
+    if not is_loopback(host):
+        # Revoking the last key later must not open a reachable service.
+        settings = replace(settings, require_keys=True)
+        os.environ["BIOPARITY_REQUIRE_KEYS"] = "true"
+
+    import uvicorn
+
     print(f"bioparity: listening on http://{host}:{port}  (try http://{host}:{port}/docs)", flush=True)
     if workers > 1:
         os.environ["BIOPARITY_DATABASE_URL"] = settings.database_url

@@ -12,6 +12,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service import __version__
 from service.api.analyses import build_router
+from service.api.integrity import build_integrity_router
 from service.api.problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
 from service.api.schemas import AnalysisRequest, Health
 from service.archive import Archive
@@ -21,8 +22,19 @@ DESCRIPTION = (
     "Post a crossover measurement table (JSON, or CSV with settings as query parameters); "
     "get the ratio-of-mean-differences and average-bioequivalence result, an HTML audit report "
     "and a zip bundle, all archived with the SHA-256 of the normalized inputs. Errors are RFC 9457 "
-    "problem details."
+    "problem details.\n\n"
+    "Every /v1 call carries `Authorization: Bearer KEY` (keys are made with `python -m service keys "
+    "create`; roles: read → GET endpoints; submit → also POST /v1/analyses and reproduction; admin → "
+    "everything, including the archive verification). Only while the archive holds no active key "
+    "and the service listens on a loopback address does it run open; records then name the "
+    "submitter \"unauthenticated\". /healthz needs no key."
 )
+
+SECURITY_SCHEME = {
+    "type": "http",
+    "scheme": "bearer",
+    "description": "an API key from `python -m service keys create` (it starts with bp_)",
+}
 
 
 def create_app(settings: ServiceSettings | None = None) -> FastAPI:
@@ -50,6 +62,7 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     app.state.archive = archive
     install_problem_handlers(app)
     app.include_router(build_router(settings))
+    app.include_router(build_integrity_router(settings))
 
     @app.get("/healthz", response_model=Health, tags=["service"], summary="Liveness")
     async def healthz() -> dict[str, str]:
@@ -78,6 +91,11 @@ def _openapi_with_request_schema(app: FastAPI) -> dict[str, Any]:
     for name, definition in request_schema.pop("$defs", {}).items():
         components.setdefault(name, definition)
     components["AnalysisRequest"] = request_schema
+    schema["components"].setdefault("securitySchemes", {})["bearer"] = SECURITY_SCHEME
+    for path, operations in schema.get("paths", {}).items():
+        if path.startswith("/v1/"):
+            for operation in operations.values():
+                operation["security"] = [{"bearer": []}]
     # FastAPI files every response model under application/json too; problems are only ever
     # sent as application/problem+json, so list that media type alone.
     for operations in schema.get("paths", {}).values():

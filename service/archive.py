@@ -17,6 +17,7 @@ from sqlalchemy import (
     Engine,
     Integer,
     MetaData,
+    PrimaryKeyConstraint,
     String,
     Table,
     Text,
@@ -28,7 +29,7 @@ from sqlalchemy import (
     text,
 )
 from sqlalchemy.engine import make_url
-from sqlalchemy.exc import SQLAlchemyError
+from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 from sqlalchemy.pool import StaticPool
 
 from service.hashing import canonical_json, sha256_hex
@@ -63,9 +64,43 @@ records = Table(
     sqlite_autoincrement=True,
 )
 
+# API keys: only the SHA-256 of each key is kept (service.access makes and checks the keys).
+api_keys = Table(
+    "api_keys",
+    metadata,
+    Column("label", String(200), primary_key=True),
+    Column("role", String(16), nullable=False),
+    Column("key_sha256", String(64), nullable=False, unique=True),
+    Column("created_at", String(32), nullable=False),
+    Column("revoked_at", String(32), nullable=True),
+)
+
+# One row per (submitter, Idempotency-Key): the fingerprint of the first request and its record.
+idempotency_keys = Table(
+    "idempotency_keys",
+    metadata,
+    Column("submitter", String(200), nullable=False),
+    Column("idempotency_key", String(200), nullable=False),
+    Column("request_sha256", String(64), nullable=False),
+    Column("record_id", String(64), nullable=False),
+    Column("created_at", String(32), nullable=False),
+    PrimaryKeyConstraint("submitter", "idempotency_key"),
+)
+
+# Tables added after schema version 1 shipped; open() adds them to an older archive file.
+_ADDED_TABLES = (api_keys, idempotency_keys)
+
 
 class ArchiveError(Exception):
     """The archive cannot be opened or does not have the expected layout."""
+
+
+class IdempotencyConflict(Exception):
+    """An Idempotency-Key was used before, by the same submitter, for a different request."""
+
+    def __init__(self, record_id: str) -> None:
+        super().__init__(f"the key was first used for another request (record {record_id})")
+        self.record_id = record_id
 
 
 @dataclass(frozen=True)
@@ -135,6 +170,9 @@ class Archive:
                     raise ArchiveError(f"no bioparity archive at {_safe_url(url)}")
                 versions = conn.execute(select(schema_version.c.version)).scalars().all()
             _check_version(versions)
+            if not {t.name for t in _ADDED_TABLES} <= tables:
+                with archive._engine.connect() as conn, _append_lock(conn):
+                    metadata.create_all(conn, tables=list(_ADDED_TABLES))
         except SQLAlchemyError as exc:
             archive.close()
             raise ArchiveError(f"cannot open the archive at {_safe_url(url)}: {exc}") from exc
@@ -146,41 +184,67 @@ class Archive:
     def close(self) -> None:
         self._engine.dispose()
 
+    @property
+    def engine(self) -> Engine:
+        """For the few modules that keep their own tables here (service.access)."""
+        return self._engine
+
     def insert(
         self, record: Mapping[str, Any], submitter: str = "unauthenticated"
     ) -> dict[str, Any]:
         """Append `record` ({"inputs_sha256", "inputs", "result"}) and return it as stored."""
-        inputs_text = canonical_json(record["inputs"])
-        if sha256_hex(inputs_text) != record["inputs_sha256"]:
-            raise ValueError("inputs_sha256 does not match the canonical form of inputs")
-        result_text = canonical_json(record["result"])
-        # Re-read from the canonical text so the stored and the returned record are one object.
-        result = json.loads(result_text)
-        engine_text = canonical_json(result.get("engine", {}))
+        texts = _record_texts(record)
         with self._engine.connect() as conn, _append_lock(conn):
-            previous = conn.execute(
-                select(records.c.record_sha256).order_by(records.c.seq.desc()).limit(1)
-            ).scalar_one_or_none()
-            created_at = utc_timestamp()
-            row = {
-                "id": uuid.uuid4().hex,
-                "created_at": created_at,
-                "inputs_sha256": record["inputs_sha256"],
-                "inputs": inputs_text.decode("utf-8"),
-                "result": result_text.decode("utf-8"),
-                "engine": engine_text.decode("utf-8"),
-                "submitter": submitter,
-                "record_sha256": record_hash(
-                    inputs_sha256=record["inputs_sha256"],
-                    result=result,
-                    created_at=created_at,
-                    submitter=submitter,
-                    previous_record_sha256=previous,
-                ),
-                "previous_record_sha256": previous,
-            }
-            conn.execute(records.insert().values(**row))
+            row = _append(conn, texts, submitter)
         return _to_record(row)
+
+    def insert_once(
+        self,
+        record: Mapping[str, Any],
+        *,
+        submitter: str,
+        idempotency_key: str,
+        request_sha256: str,
+    ) -> tuple[dict[str, Any], bool]:
+        """Append `record` unless `submitter` already used `idempotency_key`: then return the
+        record of that first request and True (raise IdempotencyConflict if its fingerprint
+        differs). The check and the append share the append lock, so two concurrent requests
+        with one key archive one record; the primary key of idempotency_keys backs that up."""
+        texts = _record_texts(record)
+        for _attempt in range(2):
+            try:
+                with self._engine.connect() as conn, _append_lock(conn):
+                    earlier = _idempotent_row(conn, submitter, idempotency_key)
+                    if earlier is not None:
+                        return _replay(conn, earlier, request_sha256), True
+                    row = _append(conn, texts, submitter)
+                    conn.execute(idempotency_keys.insert().values(
+                        submitter=submitter, idempotency_key=idempotency_key,
+                        request_sha256=request_sha256, record_id=row["id"],
+                        created_at=row["created_at"],
+                    ))
+                return _to_record(row), False
+            except IntegrityError:
+                continue  # another writer got there first (no shared lock): read its row
+        raise ArchiveError("the idempotency key could not be recorded")
+
+    def find_idempotent(
+        self, *, submitter: str, idempotency_key: str, request_sha256: str
+    ) -> dict[str, Any] | None:
+        """The record first archived under this key, if any (IdempotencyConflict if the
+        request differs); a cheap read before any computing."""
+        with self._engine.connect() as conn, conn.begin():
+            earlier = _idempotent_row(conn, submitter, idempotency_key)
+            return None if earlier is None else _replay(conn, earlier, request_sha256)
+
+    def chain_rows(self) -> Iterator[dict[str, Any]]:
+        """Every stored row, raw column text, in chain order (for service.verification)."""
+        with self._engine.connect() as conn, conn.begin():
+            result = conn.execute(
+                select(records.c.seq, records.c.engine, *_RECORD_COLUMNS).order_by(records.c.seq)
+            )
+            for row in result:
+                yield row._asdict()
 
     def get(self, record_id: str) -> dict[str, Any] | None:
         with self._engine.connect() as conn:
@@ -188,28 +252,11 @@ class Archive:
         return None if row is None else _to_record(row._asdict())
 
     def verify_chain(self) -> list[ChainBreak]:
-        """Recompute every record hash and link; an empty list means the chain is intact."""
-        breaks: list[ChainBreak] = []
-        previous: str | None = None
-        with self._engine.connect() as conn, conn.begin():
-            rows = conn.execute(select(records.c.seq, *_RECORD_COLUMNS).order_by(records.c.seq))
-            for row in rows:
-                values = row._asdict()
-                if values["previous_record_sha256"] != previous:
-                    breaks.append(ChainBreak(values["seq"], values["id"], "broken link"))
-                expected = record_hash(
-                    inputs_sha256=values["inputs_sha256"],
-                    result=json.loads(values["result"]),
-                    created_at=values["created_at"],
-                    submitter=values["submitter"],
-                    previous_record_sha256=values["previous_record_sha256"],
-                )
-                if expected != values["record_sha256"]:
-                    breaks.append(ChainBreak(values["seq"], values["id"], "record hash mismatch"))
-                if sha256_hex(values["inputs"].encode("utf-8")) != values["inputs_sha256"]:
-                    breaks.append(ChainBreak(values["seq"], values["id"], "inputs hash mismatch"))
-                previous = values["record_sha256"]
-        return breaks
+        """Every break of the chain (service.verification); an empty list means intact."""
+        from service.verification import verify_rows  # it imports this module
+
+        found = verify_rows(self.chain_rows()).breaks
+        return [ChainBreak(b.seq, b.id, b.reason.replace("_", " ")) for b in found]
 
     def list(
         self, inputs_sha256: str | None = None, limit: int = 50, offset: int = 0
@@ -252,6 +299,70 @@ def _to_record(row: Mapping[str, Any]) -> dict[str, Any]:
     }
 
 
+def _record_texts(record: Mapping[str, Any]) -> dict[str, Any]:
+    inputs_text = canonical_json(record["inputs"])
+    if sha256_hex(inputs_text) != record["inputs_sha256"]:
+        raise ValueError("inputs_sha256 does not match the canonical form of inputs")
+    result_text = canonical_json(record["result"])
+    # Re-read from the canonical text so the stored and the returned record are one object.
+    result = json.loads(result_text)
+    return {
+        "inputs_sha256": record["inputs_sha256"],
+        "inputs": inputs_text.decode("utf-8"),
+        "result_text": result_text.decode("utf-8"),
+        "result": result,
+        "engine": canonical_json(result.get("engine", {})).decode("utf-8"),
+    }
+
+
+def _append(conn: Connection, texts: Mapping[str, Any], submitter: str) -> dict[str, Any]:
+    """Insert one row at the head of the chain; the caller holds the append lock."""
+    previous = conn.execute(
+        select(records.c.record_sha256).order_by(records.c.seq.desc()).limit(1)
+    ).scalar_one_or_none()
+    created_at = utc_timestamp()
+    row = {
+        "id": uuid.uuid4().hex,
+        "created_at": created_at,
+        "inputs_sha256": texts["inputs_sha256"],
+        "inputs": texts["inputs"],
+        "result": texts["result_text"],
+        "engine": texts["engine"],
+        "submitter": submitter,
+        "record_sha256": record_hash(
+            inputs_sha256=texts["inputs_sha256"],
+            result=texts["result"],
+            created_at=created_at,
+            submitter=submitter,
+            previous_record_sha256=previous,
+        ),
+        "previous_record_sha256": previous,
+    }
+    conn.execute(records.insert().values(**row))
+    return row
+
+
+def _idempotent_row(conn: Connection, submitter: str, key: str) -> Mapping[str, Any] | None:
+    row = conn.execute(
+        select(idempotency_keys.c.request_sha256, idempotency_keys.c.record_id).where(
+            idempotency_keys.c.submitter == submitter,
+            idempotency_keys.c.idempotency_key == key,
+        )
+    ).first()
+    return None if row is None else row._asdict()
+
+
+def _replay(conn: Connection, earlier: Mapping[str, Any], request_sha256: str) -> dict[str, Any]:
+    if earlier["request_sha256"] != request_sha256:
+        raise IdempotencyConflict(earlier["record_id"])
+    row = conn.execute(
+        select(*_RECORD_COLUMNS).where(records.c.id == earlier["record_id"])
+    ).first()
+    if row is None:
+        raise ArchiveError(f"record {earlier['record_id']} of an idempotency key is missing")
+    return _to_record(row._asdict())
+
+
 @contextmanager
 def _append_lock(conn: Connection) -> Iterator[None]:
     """A write transaction that holds the archive-wide append lock until commit.
@@ -270,10 +381,23 @@ def _append_lock(conn: Connection) -> Iterator[None]:
 def _make_engine(url: str, busy_timeout_ms: int, *, create_directory: bool = True) -> Engine:
     try:
         parsed = make_url(url)
+        if parsed.get_backend_name() == "postgresql":
+            if parsed.drivername == "postgresql":
+                # SQLAlchemy's default PostgreSQL driver is psycopg2; we ship psycopg 3.
+                parsed = parsed.set(drivername="postgresql+psycopg")
+            # READ COMMITTED: the head of the chain is read by a statement that starts after
+            # the advisory lock is held, so it sees the previous writer's commit (PostgreSQL
+            # docs, "Read Committed Isolation Level"); a snapshot-per-transaction level would not.
+            return create_engine(parsed, pool_pre_ping=True, isolation_level="READ COMMITTED")
         if parsed.get_backend_name() != "sqlite":
-            return create_engine(url, pool_pre_ping=True)
+            return create_engine(parsed, pool_pre_ping=True)
     except SQLAlchemyError as exc:
         raise ArchiveError(f"cannot use database URL {_safe_url(url)}: {exc}") from exc
+    except ImportError as exc:
+        raise ArchiveError(
+            f"cannot use database URL {_safe_url(url)}: its driver is not installed ({exc.name}); "
+            "for PostgreSQL install bioparity[postgres]"
+        ) from exc
     database = parsed.database or ""
     in_memory = database in ("", ":memory:") or database.startswith("file::memory:")
     if in_memory:
@@ -300,11 +424,13 @@ def _configure_sqlite(engine: Engine, busy_timeout_ms: int, *, wal: bool) -> Non
         dbapi_connection.isolation_level = None
         cursor = dbapi_connection.cursor()
         try:
+            # First, so that the journal-mode switch below also waits for a lock held by
+            # another process instead of failing at once with "database is locked".
+            cursor.execute(f"PRAGMA busy_timeout={int(busy_timeout_ms)}")
             if wal:
                 cursor.execute("PRAGMA journal_mode=WAL")
             # FULL: a committed record survives power loss, which an archive must promise.
             cursor.execute("PRAGMA synchronous=FULL")
-            cursor.execute(f"PRAGMA busy_timeout={int(busy_timeout_ms)}")
         finally:
             cursor.close()
 

@@ -25,6 +25,10 @@ class ServiceSettings:
     page_size        default `limit` of GET /v1/analyses; max_page_size is its upper bound.
     submitter        the name archived with each record until requests carry an identity.
     busy_timeout_ms  how long an SQLite writer waits for the lock before failing.
+    max_work         cap on replicates × subjects × analysed metrics of one analysis (422 above).
+    max_compute_seconds  wall-clock cap on computing one result (the bootstrap stops; 422).
+    require_keys     refuse every /v1 call while the archive holds no active API key (set by
+                     `serve` on a non-loopback address, so revoking the last key never opens it).
     """
 
     database_url: str = DEFAULT_DATABASE_URL
@@ -34,8 +38,17 @@ class ServiceSettings:
     max_page_size: int = 500
     submitter: str = "unauthenticated"
     busy_timeout_ms: int = 10_000
+    max_work: int = 200_000_000
+    max_compute_seconds: float = 120.0
+    require_keys: bool = False
 
     def __post_init__(self) -> None:
+        if self.max_work < 1:
+            raise ValueError(f"max_work must be at least 1, got {self.max_work}")
+        if not self.max_compute_seconds > 0:
+            raise ValueError(
+                f"max_compute_seconds must be positive, got {self.max_compute_seconds}"
+            )
         if self.max_body_bytes < 1:
             raise ValueError(f"max_body_bytes must be at least 1, got {self.max_body_bytes}")
         if self.max_records < 1:
@@ -60,18 +73,26 @@ class ServiceSettings:
     def from_env(cls, environ: Mapping[str, str] | None = None) -> ServiceSettings:
         """Read BIOPARITY_DATABASE_URL, BIOPARITY_MAX_BODY_BYTES, ... (for --factory workers)."""
         env = os.environ if environ is None else environ
-        values: dict[str, str | int] = {}
+        values: dict[str, str | int | float | bool] = {}
         for name, kind in _FIELD_KINDS.items():
             raw = env.get(ENVIRONMENT_PREFIX + name.upper())
             if raw is None or raw == "":
                 continue
+            variable = ENVIRONMENT_PREFIX + name.upper()
             if kind is int:
                 try:
                     values[name] = int(raw)
                 except ValueError:
-                    raise ValueError(
-                        f"{ENVIRONMENT_PREFIX}{name.upper()} must be an integer, got {raw!r}"
-                    ) from None
+                    raise ValueError(f"{variable} must be an integer, got {raw!r}") from None
+            elif kind is float:
+                try:
+                    values[name] = float(raw)
+                except ValueError:
+                    raise ValueError(f"{variable} must be a number, got {raw!r}") from None
+            elif kind is bool:
+                if raw.lower() not in _BOOLEANS:
+                    raise ValueError(f"{variable} must be true or false, got {raw!r}")
+                values[name] = _BOOLEANS[raw.lower()]
             else:
                 values[name] = raw
         if "database_url" in values:
@@ -87,7 +108,12 @@ _FIELD_KINDS: dict[str, type] = {
     "max_page_size": int,
     "submitter": str,
     "busy_timeout_ms": int,
+    "max_work": int,
+    "max_compute_seconds": float,
+    "require_keys": bool,
 }
+
+_BOOLEANS = {"1": True, "true": True, "yes": True, "0": False, "false": False, "no": False}
 
 
 def database_url_from_argument(value: str) -> str:

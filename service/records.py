@@ -35,23 +35,25 @@ def engine_versions() -> dict[str, str]:
     }
 
 
-def build_record(inputs: dict[str, Any]) -> dict[str, Any]:
+def build_record(inputs: dict[str, Any], *, deadline: float | None = None) -> dict[str, Any]:
     """The record without `id`/`created_at` (the archive adds those)."""
     return {
         "inputs_sha256": inputs_sha256(inputs),
         "inputs": inputs,
-        "result": compute_result(inputs),
+        "result": compute_result(inputs, deadline=deadline),
     }
 
 
-def compute_result(inputs: dict[str, Any]) -> dict[str, Any]:
+def compute_result(inputs: dict[str, Any], *, deadline: float | None = None) -> dict[str, Any]:
+    """The result of `inputs`. `deadline` (time.monotonic()) stops the bootstrap with
+    service.stats.deadlines.ComputeTimeExceeded once it has passed."""
     warnings: list[dict[str, Any]] = []
     derived = derive_profile_metrics(inputs)
     tables = build_tables(inputs, extra_records=derived.records)
 
     metrics: list[dict[str, Any]] = []
     for table in tables:
-        metrics.append(_analyse_metric(table, inputs, warnings))
+        metrics.append(_analyse_metric(table, inputs, warnings, deadline))
     if derived.tmax:
         summary = tmax_summary(derived.tmax)
         metrics.append({"metric": "tmax", "analysis": "summary_only", "summary": summary})
@@ -82,7 +84,8 @@ def compute_result(inputs: dict[str, Any]) -> dict[str, Any]:
 
 
 def _analyse_metric(
-    table: MetricTable, inputs: dict[str, Any], warnings: list[dict[str, Any]]
+    table: MetricTable, inputs: dict[str, Any], warnings: list[dict[str, Any]],
+    deadline: float | None = None,
 ) -> dict[str, Any]:
     settings = inputs["settings"]
     design = inputs["design"]
@@ -95,6 +98,7 @@ def _analyse_metric(
         interval=settings["interval"],
         limits=(settings["limits"]["lower"], settings["limits"]["upper"]),
         strata=strata,
+        deadline=deadline,
     )
     ratio_json = ratio_analysis_to_json(ratio, table.subjects)
     for diagnostic in ratio_json.pop("diagnostics", []):

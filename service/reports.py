@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
@@ -19,6 +20,11 @@ from service.report_format import (
 )
 
 TEMPLATE_NAME = "report.html.j2"
+
+# Explicit directional formatting characters (Unicode UAX #9, section 2): in user text they make
+# the report display something other than what was submitted ("Trojan Source", CVE-2021-42574).
+# The template has none, so every one in the output came from the record; show each as its code.
+_BIDI_CONTROLS = re.compile("[\u061c\u200e\u200f\u202a-\u202e\u2066-\u2069]")
 
 
 def templates_folder() -> Path:
@@ -49,4 +55,5 @@ def render_report(record: dict[str, Any]) -> bytes:
     """
     context = report_context(record)
     html = environment().get_template(TEMPLATE_NAME).render(**context)
+    html = _BIDI_CONTROLS.sub(lambda match: f"[U+{ord(match.group()):04X}]", html)
     return html.encode("utf-8")

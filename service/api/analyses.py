@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import time
 from collections.abc import Mapping
 from typing import Annotated, Any
 
@@ -9,15 +10,18 @@ from fastapi import APIRouter, Depends, Path, Query, Request
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import JSONResponse, Response
 
+from service.api.access import Caller, require
 from service.api.bodies import BodyKind, body_kind, read_body
+from service.api.limits import check_work, idempotency_key, request_fingerprint, time_exceeded
 from service.api.problems import ProblemError, problem_responses
 from service.api.schemas import AnalysisPage, AnalysisRecord
-from service.archive import Archive
+from service.archive import Archive, IdempotencyConflict
 from service.bundles import build_bundle
 from service.config import ServiceSettings
 from service.csvinput import parse_csv_with_lines, relocate_to_lines
 from service.records import build_record
 from service.reports import render_report
+from service.stats.deadlines import ComputeTimeExceeded
 from service.tables import (
     InvalidRequest,
     Problem,
@@ -59,6 +63,9 @@ def archive_of(request: Request) -> Archive:
 
 ArchiveDep = Annotated[Archive, Depends(archive_of)]
 AnalysisId = Annotated[str, Path(description="archive identifier of the analysis")]
+Reader = Annotated[Caller, Depends(require("read"))]
+Submitter = Annotated[Caller, Depends(require("submit"))]
+AUTH_PROBLEMS = (401, 403)
 
 
 def build_router(settings: ServiceSettings) -> APIRouter:
@@ -70,8 +77,12 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         response_model=AnalysisRecord,
         summary="Analyse a crossover table and archive the record",
         responses={
-            201: {"description": "the archived record; `Location` names it"},
-            **problem_responses(400, 413, 415, 422, 500),
+            201: {
+                "description": "the archived record; `Location` names it. A retry with the "
+                "same Idempotency-Key and the same request answers 201 with the first record "
+                "again (and `Idempotency-Replayed: true`) instead of archiving a second one"
+            },
+            **problem_responses(400, *AUTH_PROBLEMS, 413, 415, 422, 500),
         },
         openapi_extra={
             "requestBody": _request_body_schema(),
@@ -84,27 +95,55 @@ def build_router(settings: ServiceSettings) -> APIRouter:
                     "schema": {"type": kind},
                 }
                 for name, (kind, text) in CSV_QUERY_PARAMETERS.items()
+            ] + [
+                {
+                    "name": "Idempotency-Key",
+                    "in": "header",
+                    "required": False,
+                    "description": "1–200 printable ASCII characters; a retry with the same key "
+                    "(per API key) and the same body, Content-Type and query returns the first "
+                    "record; the same key with a different request is a 422 problem",
+                    "schema": {"type": "string", "minLength": 1, "maxLength": 200},
+                }
             ],
         },
     )
-    async def create_analysis(request: Request, archive: ArchiveDep) -> Response:
-        kind = body_kind(request.headers.get("content-type"))
+    async def create_analysis(
+        request: Request, archive: ArchiveDep, caller: Submitter
+    ) -> Response:
+        content_type = request.headers.get("content-type")
+        kind = body_kind(content_type)
+        key = idempotency_key(request)
         query = _single_query_values(request)
         body = await read_body(request, settings.max_body_bytes)
+        fingerprint = request_fingerprint(body, content_type, request.query_params.multi_items())
         # Parsing, resampling and the archive write are blocking: keep them off the event loop.
-        stored = await run_in_threadpool(_analyse_and_archive, archive, settings, kind, body, query)
-        return JSONResponse(
-            stored, status_code=201, headers={"Location": f"/v1/analyses/{stored['id']}"}
-        )
+        try:
+            stored, replayed = await run_in_threadpool(
+                _analyse_and_archive, archive, settings, kind, body, query,
+                caller.submitter, key, fingerprint,
+            )
+        except IdempotencyConflict as exc:
+            raise ProblemError(
+                422,
+                "this Idempotency-Key was used before for a different request (body, "
+                "Content-Type or query differ); use a new key for a new request",
+                [(["header", "idempotency-key"], f"already names record {exc.record_id}")],
+            ) from None
+        headers = {"Location": f"/v1/analyses/{stored['id']}"}
+        if replayed:
+            headers["Idempotency-Replayed"] = "true"
+        return JSONResponse(stored, status_code=201, headers=headers)
 
     @router.get(
         "",
         response_model=AnalysisPage,
         summary="List archived analyses in the order they were created",
-        responses=problem_responses(422),
+        responses=problem_responses(*AUTH_PROBLEMS, 422),
     )
     def list_analyses(
         archive: ArchiveDep,
+        _caller: Reader,
         # Defaults, not Annotated metadata: the bounds come from settings in this closure, and
         # string annotations (PEP 563) cannot see closure variables.
         inputs_sha256: str | None = Query(  # noqa: B008 - FastAPI parameter declaration
@@ -122,10 +161,10 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         "/{analysis_id}",
         response_model=AnalysisRecord,
         summary="One archived analysis",
-        responses=problem_responses(404),
+        responses=problem_responses(*AUTH_PROBLEMS, 404),
     )
-    def get_analysis(analysis_id: AnalysisId, archive: ArchiveDep) -> Response:
-        return JSONResponse(_stored(archive, analysis_id))
+    def get_analysis(analysis_id: AnalysisId, archive: ArchiveDep, _caller: Reader) -> Response:
+        return JSONResponse(stored_record(archive, analysis_id))
 
     @router.get(
         "/{analysis_id}/report",
@@ -135,13 +174,13 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         "immutable, so the bytes are identical each time.",
         responses={
             200: {"content": {"text/html": {"schema": {"type": "string"}}}},
-            **problem_responses(404),
+            **problem_responses(*AUTH_PROBLEMS, 404),
         },
     )
-    def get_report(analysis_id: AnalysisId, archive: ArchiveDep) -> Response:
+    def get_report(analysis_id: AnalysisId, archive: ArchiveDep, _caller: Reader) -> Response:
         # Rendered from the stored record on each request: the record text is immutable and
         # render_report is a pure function of it, so the bytes are the same every time.
-        html = render_report(_stored(archive, analysis_id))
+        html = render_report(stored_record(archive, analysis_id))
         return Response(
             html,
             media_type="text/html; charset=utf-8",
@@ -154,11 +193,11 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         summary="A zip of inputs.json, record.json, report.html and a manifest of their hashes",
         responses={
             200: {"content": {"application/zip": {"schema": {"type": "string"}}}},
-            **problem_responses(404),
+            **problem_responses(*AUTH_PROBLEMS, 404),
         },
     )
-    def get_bundle(analysis_id: AnalysisId, archive: ArchiveDep) -> Response:
-        record = _stored(archive, analysis_id)
+    def get_bundle(analysis_id: AnalysisId, archive: ArchiveDep, _caller: Reader) -> Response:
+        record = stored_record(archive, analysis_id)
         bundle = build_bundle(record, render_report(record))
         return Response(
             bundle,
@@ -177,7 +216,17 @@ def _analyse_and_archive(
     kind: BodyKind,
     body: bytes,
     query: Mapping[str, str],
-) -> dict[str, Any]:
+    submitter: str,
+    key: str | None,
+    fingerprint: str,
+) -> tuple[dict[str, Any], bool]:
+    if key is not None:
+        # A retry is answered from the archive before any parsing or computing.
+        earlier = archive.find_idempotent(
+            submitter=submitter, idempotency_key=key, request_sha256=fingerprint
+        )
+        if earlier is not None:
+            return earlier, True
     lines: list[int] | None = None
     if kind == "csv":
         raw, lines = parse_csv_with_lines(body, query)
@@ -198,8 +247,17 @@ def _analyse_and_archive(
         if lines is None:
             raise
         raise InvalidRequest(relocate_to_lines(exc.problems, lines)) from None
-    record = build_record(inputs)
-    return archive.insert(record, submitter=settings.submitter)
+    check_work(inputs, settings.max_work)
+    deadline = time.monotonic() + settings.max_compute_seconds
+    try:
+        record = build_record(inputs, deadline=deadline)
+    except ComputeTimeExceeded as exc:
+        raise time_exceeded(exc, settings.max_compute_seconds) from None
+    if key is None:
+        return archive.insert(record, submitter=submitter), False
+    return archive.insert_once(
+        record, submitter=submitter, idempotency_key=key, request_sha256=fingerprint
+    )
 
 
 def _check_row_count(raw: Any, max_records: int) -> None:
@@ -228,7 +286,7 @@ def _single_query_values(request: Request) -> dict[str, str]:
     return values
 
 
-def _stored(archive: Archive, analysis_id: str) -> dict[str, Any]:
+def stored_record(archive: Archive, analysis_id: str) -> dict[str, Any]:
     record = archive.get(analysis_id)
     if record is None:
         raise ProblemError(

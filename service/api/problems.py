@@ -20,6 +20,8 @@ PROBLEM_MEDIA_TYPE = "application/problem+json"
 TYPE_PREFIX = "urn:bioparity:problem:"
 _TYPE_BY_STATUS = {
     400: "malformed-body",
+    401: "unauthorized",
+    403: "forbidden",
     404: "not-found",
     405: "method-not-allowed",
     413: "body-too-large",

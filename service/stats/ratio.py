@@ -17,7 +17,7 @@ from scipy.special import stdtrit
 
 from service.stats import intervals as iv
 from service.stats import resampling as rs
-from service.stats.resampling import Diagnostic
+from service.stats.diagnostics import Diagnostic
 
 FloatArray = NDArray[np.float64]
 INTERVAL_METHODS = ("percentile", "basic", "normal", "bca")
@@ -158,10 +158,11 @@ def _acceptance(
 def analyse_ratio(
     values: FloatArray, *, replicates: int, seed: int, confidence_level: float, interval: str,
     limits: tuple[float, float], strata: NDArray[np.int64] | None = None,
-    chunk_size: int | None = None, histogram_bins: int = 40,
+    chunk_size: int | None = None, histogram_bins: int = 40, deadline: float | None = None,
 ) -> RatioAnalysis:
     """Plug-in θ, jackknife, bootstrap with all intervals, Fieller and the acceptance check.
-    Raises ValueError naming every bad argument; otherwise never returns NaN or infinity."""
+    Raises ValueError naming every bad argument; otherwise never returns NaN or infinity.
+    ``deadline`` (time.monotonic()) is passed to the bootstrap loop: ComputeTimeExceeded."""
     values = np.asarray(values, dtype=np.float64)
     _validate(values, replicates, seed, confidence_level, interval, limits, strata, chunk_size,
               histogram_bins)
@@ -199,7 +200,7 @@ def analyse_ratio(
         boot = rs.bootstrap(
             values, theta_of_means, theta_hat=theta, jackknife_values=jack_values,
             replicates=replicates, seed=seed, confidence_level=confidence_level, strata=strata,
-            chunk_size=chunk_size, histogram_bins=histogram_bins,
+            chunk_size=chunk_size, histogram_bins=histogram_bins, deadline=deadline,
         )
         diagnostics.extend(boot.diagnostics)
         chosen = getattr(boot.intervals, interval)

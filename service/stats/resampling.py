@@ -15,6 +15,7 @@ stratum's stream in order, so the chunk size never changes a number.
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -22,22 +23,20 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.stats import intervals as iv
+from service.stats import kernels
+from service.stats.deadlines import ComputeTimeExceeded
+from service.stats.diagnostics import Diagnostic
 
+__all__ = ["Bootstrap", "Diagnostic", "Histogram", "Intervals", "Jackknife", "MonteCarloError",
+           "bootstrap", "jackknife", "leave_one_out_values", "summarise_jackknife"]
+
+_WORD = 1 << 32
 FloatArray = NDArray[np.float64]
 MeansStatistic = Callable[[FloatArray], FloatArray]
 
 # About this many subject indices per chunk keeps every chunk array cache-sized (512 kB as
 # float64) and lets the allocator reuse them instead of faulting in fresh pages each chunk.
 CHUNK_INDICES = 1 << 16
-_WORD = 1 << 32
-# Replicates per floating-point block; chunks are whole numbers of blocks (chunk_size rounds up).
-BLOCK = 128
-
-
-@dataclass(frozen=True)
-class Diagnostic:
-    code: str
-    message: str
 
 
 @dataclass(frozen=True)
@@ -134,6 +133,8 @@ class _IndexStream:
 
     def take(self, count: int) -> NDArray[np.uint32]:
         """The next ``count`` values, as uint32."""
+        if self._size == 1:  # a one-subject stratum: nothing random to draw (and q = 2³² overflows)
+            return np.zeros(count, dtype=np.uint32)
         parts = [self._left] if self._left.size else []
         have = self._left.size
         while have < count:
@@ -152,11 +153,7 @@ def _strata_members(n: int, strata: NDArray[np.int64] | None) -> list[NDArray[np
 
 
 def default_chunk_size(n: int) -> int:
-    return max(BLOCK, CHUNK_INDICES // n)
-
-
-def _round_to_blocks(chunk: int) -> int:
-    return -(-chunk // BLOCK) * BLOCK
+    return max(64, CHUNK_INDICES // n)
 
 
 def bootstrap(
@@ -171,9 +168,13 @@ def bootstrap(
     strata: NDArray[np.int64] | None = None,
     chunk_size: int | None = None,
     histogram_bins: int = 40,
+    deadline: float | None = None,
 ) -> Bootstrap:
     """Nonparametric bootstrap of subjects (Efron & Tibshirani 1993 ch. 6) with all intervals
-    and the jackknife-after-bootstrap Monte-Carlo errors. Inputs must already be validated."""
+    and the jackknife-after-bootstrap Monte-Carlo errors. Inputs must already be validated.
+
+    ``deadline`` is a time.monotonic() value: once it has passed, the loop stops before the
+    next chunk and raises ComputeTimeExceeded (no partial result is returned)."""
     n, _ = data.shape
     members = _strata_members(n, strata)
     children = np.random.SeedSequence(seed).spawn(len(members))
@@ -181,75 +182,37 @@ def bootstrap(
         _IndexStream(np.random.Generator(np.random.PCG64(child)), m.size)
         for child, m in zip(children, members, strict=True)
     ]
-    chunk = _round_to_blocks(chunk_size if chunk_size is not None else default_chunk_size(n))
-    offsets = (np.arange(chunk, dtype=np.intp) * n)[:, None]
-    ones = np.ones(chunk * n, dtype=np.float64)  # bincount weights: float64 counts in one pass
+    chunk = chunk_size if chunk_size is not None else default_chunk_size(n)
     theta_star = np.empty(replicates, dtype=np.float64)
     # Per subject i: Σ over replicates omitting i of [1, θ*−θ̂, (θ*−θ̂)²] (finite replicates only).
     omitted = np.zeros((3, n), dtype=np.float64)
     single = strata is None
     done = 0
     while done < replicates:
+        if deadline is not None and time.monotonic() > deadline:
+            raise ComputeTimeExceeded(done, replicates)
         c = min(chunk, replicates - done)
         if single:
-            index = np.empty((c, n), dtype=np.intp)
-            np.add(streams[0].take(c * n).reshape(c, n), offsets[:c], out=index)
+            index = streams[0].take(c * n).reshape(c, n)
         else:
-            index = np.empty((c, n), dtype=np.intp)
+            index = np.empty((c, n), dtype=np.uint32)
             start = 0
             for stream, m in zip(streams, members, strict=True):
                 draws = stream.take(c * m.size).reshape(c, m.size)
-                index[:, start : start + m.size] = m[draws]
+                index[:, start : start + m.size] = m.astype(np.uint32)[draws]
                 start += m.size
-            index += offsets[:c]
-        # Offset indices make one bincount give every replicate's subject counts.
-        tally = np.bincount(index.ravel(), weights=ones[: c * n], minlength=c * n)
-        counts = np.asarray(tally, dtype=np.float64).reshape(c, n)  # already float64: no copy
-        absent = np.empty((c, n), dtype=np.float64)
-        np.equal(counts, 0.0, out=absent, casting="unsafe")
-        theta = _chunk_statistic(counts, absent, data, statistic, theta_hat, omitted)
+        means = kernels.resampled_means(index, data)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            theta = np.asarray(statistic(means), dtype=np.float64)
+        finite = np.isfinite(theta)
+        centred = np.where(finite, theta - theta_hat, 0.0)
+        kernels.add_omission_sums(index, finite, centred, omitted)
         theta_star[done : done + c] = theta
         done += c
     return _summarise(
         theta_star, omitted, theta_hat, jackknife_values, replicates, seed,
         confidence_level, histogram_bins,
     )
-
-
-def _blocks(c: int) -> list[slice]:
-    """Whole blocks first (one batched product), then the short tail block, if any."""
-    full = c - c % BLOCK
-    parts = [slice(0, full)] if full else []
-    return parts + ([slice(full, c)] if full < c else [])
-
-
-def _chunk_statistic(
-    counts: FloatArray, absent: FloatArray, data: FloatArray, statistic: MeansStatistic,
-    theta_hat: float, omitted: FloatArray,
-) -> FloatArray:
-    # Products run per fixed block of BLOCK replicates (batched matmul calls one gemm per block)
-    # and block sums are added in replicate order, so no floating-point sum depends on where a
-    # chunk ends; elementwise steps are exact per replicate anyway.
-    n = data.shape[0]
-    means = np.empty((counts.shape[0], data.shape[1]), dtype=np.float64)
-    for part in _blocks(counts.shape[0]):
-        rows = part.stop - part.start
-        size = min(rows, BLOCK)
-        stacked = counts[part].reshape(rows // size, size, n)
-        means[part] = (stacked @ data).reshape(rows, -1)
-    means /= n
-    with np.errstate(divide="ignore", invalid="ignore"):
-        theta = np.asarray(statistic(means), dtype=np.float64)
-    finite = np.isfinite(theta)
-    centred = np.where(finite, theta - theta_hat, 0.0)
-    weights = np.stack([finite.astype(np.float64), centred, centred * centred], axis=-1)
-    for part in _blocks(counts.shape[0]):
-        rows = part.stop - part.start
-        size = min(rows, BLOCK)
-        w = weights[part].reshape(rows // size, size, 3).transpose(0, 2, 1)
-        for partial in w @ absent[part].reshape(rows // size, size, n):
-            omitted += partial
-    return theta
 
 
 def _monte_carlo(

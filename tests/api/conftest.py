@@ -10,7 +10,6 @@ from collections.abc import Callable, Iterator
 from concurrent.futures import Future
 from contextlib import AbstractContextManager
 from functools import partial
-from pathlib import Path
 from typing import Any
 
 import anyio.from_thread
@@ -112,13 +111,11 @@ class ApiClient:
 
 
 @pytest.fixture
-def database_url(tmp_path: Path) -> str:
-    return f"sqlite:///{tmp_path / 'archive.sqlite3'}"
-
-
-@pytest.fixture
 def make_client(database_url: str) -> Iterator[Callable[..., ApiClient]]:
-    """Build a client over a fresh app on the test's SQLite file (settings overridable)."""
+    """Build a client over a fresh app on the test's archive (settings overridable).
+
+    `database_url` comes from tests/conftest.py: SQLite, and PostgreSQL when configured.
+    """
     opened: list[ApiClient] = []
 
     def make(raise_app_exceptions: bool = True, **overrides: Any) -> ApiClient:

@@ -209,10 +209,10 @@ def test_analysis_runs_off_the_event_loop(
     a worker thread (Starlette docs, "Thread pool": blocking calls belong in run_in_threadpool)."""
     entered, finished = threading.Event(), threading.Event()
 
-    def slow_build_record(inputs: dict[str, Any]) -> dict[str, Any]:
+    def slow_build_record(inputs: dict[str, Any], **options: Any) -> dict[str, Any]:
         entered.set()
         time.sleep(1.5)
-        record: dict[str, Any] = build_record(inputs)
+        record: dict[str, Any] = build_record(inputs, **options)
         finished.set()
         return record
 

@@ -152,7 +152,7 @@ def test_stratified_resampling_keeps_stratum_sizes() -> None:
     replicate draws within each stratum as many subjects as the stratum has. A column holding
     the stratum indicator has the same mean in every replicate exactly."""
     rng = np.random.default_rng(2)
-    strata = np.array([0] * 7 + [1] * 5 + [2] * 9, dtype=np.int64)
+    strata = np.array([0] * 7 + [1] * 5 + [2] * 8 + [3], dtype=np.int64)
     indicator = (strata == 1).astype(np.float64)
     data = np.column_stack([indicator, rng.normal(size=21)])
     out = rs.bootstrap(data, lambda m: m[..., 0], theta_hat=5 / 21,

@@ -1,0 +1,1 @@
+"""Tests that run the real service as subprocesses on 127.0.0.1."""
