@@ -152,7 +152,7 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         limit: int = Query(  # noqa: B008
             settings.page_size, ge=1, le=settings.max_page_size, description="page size"
         ),
-        offset: int = Query(0, ge=0, description="records to skip"),  # noqa: B008
+        offset: int = Query(0, ge=0, le=2**62, description="records to skip"),  # noqa: B008
     ) -> Response:
         items, total = archive.list(inputs_sha256=inputs_sha256, limit=limit, offset=offset)
         return JSONResponse({"items": items, "total": total})

@@ -22,6 +22,7 @@ import rfc8785
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from service.hashing import canonical_json
 from service.records import build_record
 from service.tables import InvalidRequest, normalize_request, parse_csv_body, parse_json_body
 
@@ -311,7 +312,8 @@ def accepted_requests(draw: st.DrawFn) -> dict[str, Any]:
     """Small valid crossovers, including degenerate ones (ties, zero differences, equal arms)."""
     arms = draw(st.sampled_from([("T", "R", "B"), ("T", "R")]))
     subjects = draw(st.integers(3, 7))
-    kind = draw(st.sampled_from(["random", "constant", "equal_reference_baseline", "tiny", "huge"]))
+    kind = draw(st.sampled_from(["random", "constant", "equal_reference_baseline", "tiny", "large",
+                                 "huge"]))
     rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))
     records = []
     for i in range(subjects):
@@ -323,6 +325,8 @@ def accepted_requests(draw: st.DrawFn) -> dict[str, Any]:
                 value = 20.0 if treatment == "T" else 10.0
             elif kind == "tiny":
                 value = float(rng.uniform(1e-12, 2e-12))
+            elif kind == "large":  # integral doubles that RFC 8785 prints as plain digits
+                value = float(round(rng.uniform(1e16, 1e20)))
             elif kind == "huge":
                 value = float(rng.uniform(1e90, 2e90))
             else:
@@ -345,11 +349,14 @@ def accepted_requests(draw: st.DrawFn) -> dict[str, Any]:
 @given(raw=accepted_requests())
 def test_accepted_requests_build_a_nan_free_record(raw: dict[str, Any]) -> None:
     """Any accepted request yields a record whose JSON holds no NaN or Infinity (RFC 8259; data
-    contract: a figure that cannot be computed is null with a warning code), and whose warnings
-    each carry a code."""
+    contract: a figure that cannot be computed is null with a warning code), whose warnings each
+    carry a code, and whose canonical JSON read back canonicalizes to the same bytes (RFC 8785:
+    the archive re-hashes what it stored)."""
     inputs = normalize_request(raw)
     record = build_record(inputs)
     text = json.dumps(record, allow_nan=False)
     assert json.loads(text)["inputs_sha256"] == record["inputs_sha256"]
+    canonical = canonical_json(record)
+    assert canonical_json(json.loads(canonical)) == canonical
     for warning in record["result"]["warnings"]:
         assert isinstance(warning.get("code"), str) and warning["code"]
