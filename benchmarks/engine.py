@@ -22,7 +22,7 @@ sys.path.insert(0, str(ROOT))
 
 from service.stats.ratio import analyse_ratio, theta_of_means  # noqa: E402
 
-REPEATS = 5
+REPEATS = 9
 TARGET_RATIO = 0.20
 TARGET_RSS_MB = 300.0
 CASES = [(24, 10_000), (24, 100_000), (200, 10_000), (200, 100_000)]

@@ -81,7 +81,10 @@ def run_serve(host: str, port: int, db: str | None, workers: int) -> int:
     from service.config import ServiceSettings
 
     settings = ServiceSettings.from_cli(db)
-    print(f"bioparity: archive {settings.database_url}", flush=True)
+    from sqlalchemy.engine import make_url
+
+    shown = make_url(settings.database_url).render_as_string(hide_password=True)
+    print(f"bioparity: archive {shown}", flush=True)
     # Decided before uvicorn is even imported, so a refusal never binds the port.
     try:
         may_start, message = access_at_start(host, settings.database_url)

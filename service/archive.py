@@ -40,6 +40,12 @@ SCHEMA_VERSION = 1
 # (an arbitrary constant of our own; any two writers of one archive must use the same one).
 CHAIN_LOCK_KEY = 0x62696F70  # "biop"
 
+# Connections per process: beyond pool_size each extra one is closed after use, and a new
+# PostgreSQL login (SCRAM) per request is costly; 4 workers x 20 stay under the server's default
+# max_connections of 100 (PostgreSQL docs, "Connections and Authentication").
+POSTGRES_POOL_SIZE = 16
+POSTGRES_POOL_OVERFLOW = 4
+
 metadata = MetaData()
 
 schema_version = Table(
@@ -388,7 +394,10 @@ def _make_engine(url: str, busy_timeout_ms: int, *, create_directory: bool = Tru
             # READ COMMITTED: the head of the chain is read by a statement that starts after
             # the advisory lock is held, so it sees the previous writer's commit (PostgreSQL
             # docs, "Read Committed Isolation Level"); a snapshot-per-transaction level would not.
-            return create_engine(parsed, pool_pre_ping=True, isolation_level="READ COMMITTED")
+            return create_engine(
+                parsed, pool_pre_ping=True, isolation_level="READ COMMITTED",
+                pool_size=POSTGRES_POOL_SIZE, max_overflow=POSTGRES_POOL_OVERFLOW,
+            )
         if parsed.get_backend_name() != "sqlite":
             return create_engine(parsed, pool_pre_ping=True)
     except SQLAlchemyError as exc:

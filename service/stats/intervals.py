@@ -42,12 +42,32 @@ def tail_alpha(confidence_level: float) -> float:
     return (1.0 - confidence_level) / 2.0
 
 
+def _is_sorted(values: FloatArray) -> bool:
+    return bool(values.size < 2 or np.all(values[1:] >= values[:-1]))
+
+
+def sorted_quantiles(ordered: FloatArray, levels: FloatArray) -> FloatArray:
+    """np.quantile(x, levels, method="linear") for sorted x, computed with numpy's own steps
+    (Hyndman & Fan 1996 type 7: virtual index (n − 1)·q, then numpy's two-sided lerp), without
+    its per-call overhead; equal to it bit for bit (tested)."""
+    n = ordered.size
+    virtual = (n - 1) * levels
+    previous = np.floor(virtual)
+    gamma = virtual - previous
+    below = np.clip(previous.astype(np.intp), 0, n - 1)
+    above = np.clip(previous.astype(np.intp) + 1, 0, n - 1)
+    a, b = ordered[below], ordered[above]
+    diff = b - a
+    return np.where(gamma >= 0.5, b - diff * (1.0 - gamma), a + diff * gamma)
+
+
 def quantile_intervals(
     distribution: FloatArray, levels: list[tuple[float, float]]
 ) -> list[Interval]:
     """Intervals read at several (low, high) level pairs with one quantile pass."""
     flat = np.array([p for pair in levels for p in pair], dtype=np.float64)
-    q = np.quantile(distribution, flat, method="linear")
+    q = sorted_quantiles(np.sort(distribution) if not _is_sorted(distribution) else distribution,
+                         flat)
     out = []
     for i, pair in enumerate(levels):
         lower, upper = float(q[2 * i]), float(q[2 * i + 1])

@@ -5,11 +5,13 @@ means to estimates (...). Subjects are resampled as whole rows. Replicates whose
 finite (e.g. a zero denominator) are excluded from every quantile, mean and standard error, and
 counted in ``nonfinite_replicates``.
 
-Random subject indices: one ``numpy.random.SeedSequence(seed)`` per analysis, one child (PCG64) per
-stratum. Each stratum's generator yields a stream of 32-bit words; a word x is accepted when
-x < n_s·q with q = ⌊2³²/n_s⌋ and mapped to x // q, which is exactly uniform on 0..n_s−1 (a rejected
-word, probability < n_s/2³², is skipped). Replicate b takes the next n_s accepted values of each
-stratum's stream in order, so the chunk size never changes a number.
+Random subject indices: one ``numpy.random.SeedSequence(seed)`` per analysis.
+Without strata (k ≤ 3 columns) the SeedSequence seeds one xoshiro256** stream (Blackman & Vigna 2021)
+read as 32-bit lanes and mapped to subjects by Lemire's multiply-and-reject method (kernels.py), with
+the resampled means formed in the same compiled pass. With strata, the SeedSequence spawns one child
+(PCG64) per stratum; each stratum's generator yields a stream of 32-bit words; a word x is accepted
+when x < n_s·q with q = ⌊2³²/n_s⌋ and mapped to x // q. Both mappings are exactly uniform. Replicate
+b takes the next draws of each stream in order, so the chunk size never changes a number.
 """
 
 from __future__ import annotations
@@ -152,8 +154,9 @@ def _strata_members(n: int, strata: NDArray[np.int64] | None) -> list[NDArray[np
     return [np.flatnonzero(strata == code).astype(np.intp) for code in np.unique(strata)]
 
 
-def default_chunk_size(n: int) -> int:
-    return max(64, CHUNK_INDICES // n)
+def default_chunk_size(n: int, compiled_draws: bool = False) -> int:
+    # The compiled path keeps no index matrix, so it can take larger chunks for the same memory.
+    return max(1024, (4 * CHUNK_INDICES) // n) if compiled_draws else max(64, CHUNK_INDICES // n)
 
 
 def bootstrap(
@@ -176,43 +179,59 @@ def bootstrap(
     ``deadline`` is a time.monotonic() value: once it has passed, the loop stops before the
     next chunk and raises ComputeTimeExceeded (no partial result is returned)."""
     n, _ = data.shape
-    members = _strata_members(n, strata)
+    members = _strata_members(n, strata)  # no strata: one stratum of all subjects
     children = np.random.SeedSequence(seed).spawn(len(members))
     streams = [
         _IndexStream(np.random.Generator(np.random.PCG64(child)), m.size)
         for child, m in zip(children, members, strict=True)
     ]
-    chunk = chunk_size if chunk_size is not None else default_chunk_size(n)
+    chunk = chunk_size if chunk_size is not None else default_chunk_size(n, strata is None)
     theta_star = np.empty(replicates, dtype=np.float64)
     # Per subject i: Σ over replicates omitting i of [1, θ*−θ̂, (θ*−θ̂)²] (finite replicates only).
     omitted = np.zeros((3, n), dtype=np.float64)
-    single = strata is None
+    single = strata is None and data.shape[1] <= 3
+    if single:
+        draws = kernels.SubjectDraws(np.random.SeedSequence(seed), data)
     done = 0
     while done < replicates:
         if deadline is not None and time.monotonic() > deadline:
             raise ComputeTimeExceeded(done, replicates)
         c = min(chunk, replicates - done)
         if single:
-            index = streams[0].take(c * n).reshape(c, n)
+            means, present, _ = draws.draw(c)
         else:
             index = np.empty((c, n), dtype=np.uint32)
             start = 0
             for stream, m in zip(streams, members, strict=True):
-                draws = stream.take(c * m.size).reshape(c, m.size)
-                index[:, start : start + m.size] = m.astype(np.uint32)[draws]
+                picks = stream.take(c * m.size).reshape(c, m.size)
+                index[:, start : start + m.size] = m.astype(np.uint32)[picks]
                 start += m.size
-        means = kernels.resampled_means(index, data)
+            means, present = kernels.means_and_presence(index, data)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             theta = np.asarray(statistic(means), dtype=np.float64)
         finite = np.isfinite(theta)
         centred = np.where(finite, theta - theta_hat, 0.0)
-        kernels.add_omission_sums(index, finite, centred, omitted)
+        kernels.add_omission_sums(present, n, finite, centred, omitted)
         theta_star[done : done + c] = theta
         done += c
     return _summarise(
         theta_star, omitted, theta_hat, jackknife_values, replicates, seed,
         confidence_level, histogram_bins,
     )
+
+
+def sorted_histogram(
+    ordered: FloatArray, bins: int
+) -> tuple[NDArray[np.int64], FloatArray]:
+    """np.histogram(x, bins) for sorted x: equal-width bins from min to max, each [left, right)
+    except the last, [left, right] (numpy's documented convention)."""
+    first, last = float(ordered[0]), float(ordered[-1])
+    if first == last:
+        first, last = first - 0.5, last + 0.5
+    edges = np.linspace(first, last, bins + 1)
+    positions = np.searchsorted(ordered, edges, side="left")
+    positions[-1] = ordered.size
+    return np.diff(positions).astype(np.int64), edges
 
 
 def _monte_carlo(
@@ -265,7 +284,10 @@ def _summarise(
                          tuple(diagnostics), distribution)
     bias = float(distribution.mean()) - theta_hat
     se = float(distribution.std(ddof=1))
-    percentile, bca = iv.percentile_and_bca(distribution, theta_hat, jackknife_values,
+    # One sort serves every quantile, tail count and the histogram (cheaper than repeated
+    # selection passes); the replicates themselves keep their draw order.
+    ordered = np.sort(distribution)
+    percentile, bca = iv.percentile_and_bca(ordered, theta_hat, jackknife_values,
                                             confidence_level)
     if not bca.acceleration_defined:
         diagnostics.append(Diagnostic(
@@ -290,7 +312,7 @@ def _summarise(
     )
     monte_carlo, problems = _monte_carlo(omitted, theta_hat, jackknife_values)
     diagnostics.extend(problems)
-    counts, edges = np.histogram(distribution, bins=histogram_bins)
+    counts, edges = sorted_histogram(ordered, histogram_bins)
     histogram = Histogram(tuple(float(e) for e in edges), tuple(int(c) for c in counts))
     return Bootstrap(
         replicates, seed, int(distribution.size), nonfinite, bias, se, intervals, bca.z0,

@@ -14,6 +14,7 @@ from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 
 from service.archive import Archive, ArchiveError
+from tests.conftest import fresh_postgres_schema, postgres_base_url
 
 PROCESSES = 4
 THREADS_PER_PROCESS = 4
@@ -121,16 +122,17 @@ def test_open_needs_an_archive_and_keeps_it(database_url: str) -> None:
         reopened.close()
 
 
-def test_plain_postgresql_url_uses_psycopg(database_url: str) -> None:
+def test_plain_postgresql_url_uses_psycopg() -> None:
     """postgresql://… (SQLAlchemy's default driver name, psycopg2) opens with the psycopg 3
     driver that bioparity ships (SQLAlchemy 2 docs, "PostgreSQL" dialect: +psycopg)."""
-    url = make_url(database_url)
-    if url.get_backend_name() != "postgresql":
-        pytest.skip("PostgreSQL URLs only")
-    plain = url.set(drivername="postgresql").render_as_string(hide_password=False)
-    archive = Archive.create(plain)
-    try:
-        archive.insert(small_record("plain"))
-        assert archive.list()[1] == 1
-    finally:
-        archive.close()
+    base = postgres_base_url()
+    if base is None:
+        pytest.skip("set BIOPARITY_TEST_POSTGRES_URL to run the PostgreSQL cases")
+    with fresh_postgres_schema(base) as url:
+        plain = make_url(url).set(drivername="postgresql").render_as_string(hide_password=False)
+        archive = Archive.create(plain)
+        try:
+            archive.insert(small_record("plain"))
+            assert archive.list()[1] == 1
+        finally:
+            archive.close()
