@@ -1,4 +1,5 @@
-"""The archive of analysis records: append-only, hash-chained, the only module that speaks SQL."""
+"""The archive of analysis records: append-only, hash-chained; with engines.py, the only code that
+speaks SQL."""
 
 from __future__ import annotations
 
@@ -8,7 +9,6 @@ from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
-from pathlib import Path
 from typing import Any
 
 from sqlalchemy import (
@@ -21,17 +21,15 @@ from sqlalchemy import (
     String,
     Table,
     Text,
-    create_engine,
-    event,
     func,
     inspect,
     select,
     text,
 )
-from sqlalchemy.engine import make_url
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
-from sqlalchemy.pool import StaticPool
 
+from service.engines import ArchiveError as ArchiveError
+from service.engines import make_engine, safe_url
 from service.hashing import canonical_json, sha256_hex
 
 SCHEMA_VERSION = 1
@@ -39,12 +37,6 @@ SCHEMA_VERSION = 1
 # Key of the PostgreSQL transaction-level advisory lock that serialises appends to the chain
 # (an arbitrary constant of our own; any two writers of one archive must use the same one).
 CHAIN_LOCK_KEY = 0x62696F70  # "biop"
-
-# Connections per process: beyond pool_size each extra one is closed after use, and a new
-# PostgreSQL login (SCRAM) per request is costly; 4 workers x 20 stay under the server's default
-# max_connections of 100 (PostgreSQL docs, "Connections and Authentication").
-POSTGRES_POOL_SIZE = 16
-POSTGRES_POOL_OVERFLOW = 4
 
 metadata = MetaData()
 
@@ -97,10 +89,6 @@ idempotency_keys = Table(
 _ADDED_TABLES = (api_keys, idempotency_keys)
 
 
-class ArchiveError(Exception):
-    """The archive cannot be opened or does not have the expected layout."""
-
-
 class IdempotencyConflict(Exception):
     """An Idempotency-Key was used before, by the same submitter, for a different request."""
 
@@ -148,7 +136,7 @@ class Archive:
     @classmethod
     def create(cls, url: str, *, busy_timeout_ms: int = 10_000) -> Archive:
         """Open the archive at `url`, creating its tables (and SQLite file) when missing."""
-        archive = cls(_make_engine(url, busy_timeout_ms))
+        archive = cls(make_engine(url, busy_timeout_ms))
         try:
             with archive._engine.connect() as conn, _append_lock(conn):
                 metadata.create_all(conn)
@@ -159,7 +147,7 @@ class Archive:
             _check_version(versions)
         except SQLAlchemyError as exc:
             archive.close()
-            raise ArchiveError(f"cannot create the archive at {_safe_url(url)}: {exc}") from exc
+            raise ArchiveError(f"cannot create the archive at {safe_url(url)}: {exc}") from exc
         except BaseException:
             archive.close()
             raise
@@ -168,12 +156,12 @@ class Archive:
     @classmethod
     def open(cls, url: str, *, busy_timeout_ms: int = 10_000) -> Archive:
         """Open an existing archive; raise ArchiveError when `url` holds none."""
-        archive = cls(_make_engine(url, busy_timeout_ms, create_directory=False))
+        archive = cls(make_engine(url, busy_timeout_ms, create_directory=False))
         try:
             with archive._engine.connect() as conn:
                 tables = set(inspect(conn).get_table_names())
                 if not {"schema_version", "records"} <= tables:
-                    raise ArchiveError(f"no bioparity archive at {_safe_url(url)}")
+                    raise ArchiveError(f"no bioparity archive at {safe_url(url)}")
                 versions = conn.execute(select(schema_version.c.version)).scalars().all()
             _check_version(versions)
             if not {t.name for t in _ADDED_TABLES} <= tables:
@@ -181,7 +169,7 @@ class Archive:
                     metadata.create_all(conn, tables=list(_ADDED_TABLES))
         except SQLAlchemyError as exc:
             archive.close()
-            raise ArchiveError(f"cannot open the archive at {_safe_url(url)}: {exc}") from exc
+            raise ArchiveError(f"cannot open the archive at {safe_url(url)}: {exc}") from exc
         except BaseException:
             archive.close()
             raise
@@ -384,80 +372,9 @@ def _append_lock(conn: Connection) -> Iterator[None]:
         yield
 
 
-def _make_engine(url: str, busy_timeout_ms: int, *, create_directory: bool = True) -> Engine:
-    try:
-        parsed = make_url(url)
-        if parsed.get_backend_name() == "postgresql":
-            if parsed.drivername == "postgresql":
-                # SQLAlchemy's default PostgreSQL driver is psycopg2; we ship psycopg 3.
-                parsed = parsed.set(drivername="postgresql+psycopg")
-            # READ COMMITTED: the head of the chain is read by a statement that starts after
-            # the advisory lock is held, so it sees the previous writer's commit (PostgreSQL
-            # docs, "Read Committed Isolation Level"); a snapshot-per-transaction level would not.
-            return create_engine(
-                parsed, pool_pre_ping=True, isolation_level="READ COMMITTED",
-                pool_size=POSTGRES_POOL_SIZE, max_overflow=POSTGRES_POOL_OVERFLOW,
-            )
-        if parsed.get_backend_name() != "sqlite":
-            return create_engine(parsed, pool_pre_ping=True)
-    except SQLAlchemyError as exc:
-        raise ArchiveError(f"cannot use database URL {_safe_url(url)}: {exc}") from exc
-    except ImportError as exc:
-        raise ArchiveError(
-            f"cannot use database URL {_safe_url(url)}: its driver is not installed ({exc.name}); "
-            "for PostgreSQL install bioparity[postgres]"
-        ) from exc
-    database = parsed.database or ""
-    in_memory = database in ("", ":memory:") or database.startswith("file::memory:")
-    if in_memory:
-        # One shared connection, or every pooled connection would see its own empty database.
-        engine = create_engine(
-            url, poolclass=StaticPool, connect_args={"check_same_thread": False}
-        )
-    else:
-        path = Path(database)
-        if create_directory:
-            path.parent.mkdir(parents=True, exist_ok=True)
-        elif not path.exists():
-            raise ArchiveError(f"no archive file at {path}")
-        engine = create_engine(url, connect_args={"check_same_thread": False})
-    _configure_sqlite(engine, busy_timeout_ms, wal=not in_memory)
-    return engine
-
-
-def _configure_sqlite(engine: Engine, busy_timeout_ms: int, *, wal: bool) -> None:
-    @event.listens_for(engine, "connect")
-    def _on_connect(dbapi_connection: Any, _record: Any) -> None:
-        # Let SQLAlchemy, not the sqlite3 module, issue BEGIN, so a writer can ask for
-        # BEGIN IMMEDIATE (the documented pysqlite recipe for explicit transactions).
-        dbapi_connection.isolation_level = None
-        cursor = dbapi_connection.cursor()
-        try:
-            # First, so that the journal-mode switch below also waits for a lock held by
-            # another process instead of failing at once with "database is locked".
-            cursor.execute(f"PRAGMA busy_timeout={int(busy_timeout_ms)}")
-            if wal:
-                cursor.execute("PRAGMA journal_mode=WAL")
-            # FULL: a committed record survives power loss, which an archive must promise.
-            cursor.execute("PRAGMA synchronous=FULL")
-        finally:
-            cursor.close()
-
-    @event.listens_for(engine, "begin")
-    def _on_begin(conn: Connection) -> None:
-        conn.exec_driver_sql(conn.get_execution_options().get("sqlite_begin", "BEGIN"))
-
-
 def _check_version(versions: list[int] | Any) -> None:
     found = list(versions)
     if found != [SCHEMA_VERSION]:
         raise ArchiveError(
             f"archive schema version {found} is not supported (this build reads {SCHEMA_VERSION})"
         )
-
-
-def _safe_url(url: str) -> str:
-    try:
-        return make_url(url).render_as_string(hide_password=True)
-    except SQLAlchemyError:
-        return "(an unreadable URL)"
