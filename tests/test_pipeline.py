@@ -11,6 +11,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import integrate
 
 from service.records import _replace_nonfinite, build_record
@@ -131,3 +133,22 @@ def test_profile_problem_is_a_validation_error() -> None:
     with pytest.raises(InvalidRequest) as caught:
         build_record(normalize_request(request))
     assert caught.value.problems[0].loc[0] == "profiles"
+
+
+@settings(max_examples=8, deadline=None)
+@given(st.permutations(list(range(36))))
+def test_row_order_changes_no_number_and_no_hash(order: list[int]) -> None:
+    """DESIGN.md §Request: normalization sorts the records, so row order changes neither the hash
+    (RFC 8785 over the inputs) nor any figure of the result (property test, hypothesis)."""
+    rng = np.random.default_rng(8)
+    records = [
+        {"subject": f"S{i:02d}", "period": p, "treatment": t,
+         "value": float(rng.normal({"T": 10.4, "R": 10.0, "B": 6.0}[t], 0.5))}
+        for i in range(12) for p, t in enumerate("BRT", 1)
+    ]
+    base = {"design": {"test": "T", "reference": "R", "baseline": "B"},
+            "settings": {"replicates": 200, "seed": 4}}
+    first = build_record(normalize_request({**base, "records": records}))
+    shuffled = build_record(normalize_request({**base, "records": [records[i] for i in order]}))
+    assert shuffled["inputs_sha256"] == first["inputs_sha256"]
+    assert json.dumps(shuffled["result"], sort_keys=True) == json.dumps(first["result"], sort_keys=True)
