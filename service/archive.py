@@ -3,7 +3,6 @@ speaks SQL."""
 
 from __future__ import annotations
 
-import json
 import uuid
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
@@ -30,7 +29,7 @@ from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 
 from service.engines import ArchiveError as ArchiveError
 from service.engines import make_engine, safe_url
-from service.hashing import canonical_json, sha256_hex
+from service.hashing import canonical_json, load_canonical, sha256_hex
 
 SCHEMA_VERSION = 1
 
@@ -285,8 +284,8 @@ def _to_record(row: Mapping[str, Any]) -> dict[str, Any]:
         "id": row["id"],
         "created_at": row["created_at"],
         "inputs_sha256": row["inputs_sha256"],
-        "inputs": json.loads(row["inputs"]),
-        "result": json.loads(row["result"]),
+        "inputs": load_canonical(row["inputs"]),
+        "result": load_canonical(row["result"]),
         "submitter": row["submitter"],
         "record_sha256": row["record_sha256"],
         "previous_record_sha256": row["previous_record_sha256"],
@@ -299,7 +298,7 @@ def _record_texts(record: Mapping[str, Any]) -> dict[str, Any]:
         raise ValueError("inputs_sha256 does not match the canonical form of inputs")
     result_text = canonical_json(record["result"])
     # Re-read from the canonical text so the stored and the returned record are one object.
-    result = json.loads(result_text)
+    result = load_canonical(result_text)
     return {
         "inputs_sha256": record["inputs_sha256"],
         "inputs": inputs_text.decode("utf-8"),

@@ -11,7 +11,7 @@ import numpy as np
 import scipy
 
 from service import __version__
-from service.hashing import canonical_json, inputs_sha256, sha256_hex
+from service.hashing import inputs_sha256
 from service.profiles import derive_profile_metrics
 from service.stats.equivalence import (
     average_bioequivalence,
@@ -22,7 +22,6 @@ from service.stats.ratio import analyse_ratio, ratio_analysis_to_json
 from service.tables import MetricTable, build_tables
 
 ROLES = ("test", "reference", "baseline")
-__all__ = ["build_record", "canonical_json", "compute_result", "inputs_sha256", "sha256_hex"]
 
 
 def engine_versions() -> dict[str, str]:

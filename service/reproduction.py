@@ -8,11 +8,10 @@ record; its version change is reported in `engine_differences`, not counted as a
 
 from __future__ import annotations
 
-import json
 from collections.abc import Mapping
 from typing import Any
 
-from service.hashing import canonical_json, inputs_sha256
+from service.hashing import canonical_json, inputs_sha256, load_canonical
 from service.records import compute_result
 
 MAX_LISTED = 200
@@ -27,7 +26,7 @@ Path = list[str | int]
 
 def reproduce(record: Mapping[str, Any], *, deadline: float | None = None) -> dict[str, Any]:
     inputs = record["inputs"]
-    recomputed = json.loads(canonical_json(compute_result(inputs, deadline=deadline)))
+    recomputed = load_canonical(canonical_json(compute_result(inputs, deadline=deadline)))
     archived = record["result"]
     differences: list[dict[str, Any]] = []
     if inputs_sha256(inputs) != record["inputs_sha256"]:

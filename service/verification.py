@@ -10,13 +10,12 @@ disagree) — compare `head_record_sha256` with a copy kept outside the archive 
 
 from __future__ import annotations
 
-import json
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
 from service.archive import record_hash
-from service.hashing import canonical_json, sha256_hex
+from service.hashing import canonical_json, load_canonical, sha256_hex
 
 
 @dataclass(frozen=True)
@@ -80,12 +79,12 @@ def _check(row: Mapping[str, Any], previous: str | None) -> list[Break]:
         add("inputs_hash_mismatch", "the stored inputs do not hash to inputs_sha256")
     else:
         try:
-            if canonical_json(json.loads(row["inputs"])).decode("utf-8") != row["inputs"]:
+            if canonical_json(load_canonical(row["inputs"])).decode("utf-8") != row["inputs"]:
                 add("inputs_not_canonical", "the stored inputs text is not in RFC 8785 form")
         except (ValueError, TypeError):
             add("inputs_unreadable", "the stored inputs are not JSON")
     try:
-        result = json.loads(row["result"])
+        result = load_canonical(row["result"])
     except (ValueError, TypeError):
         add("result_unreadable", "the stored result is not JSON")
         return found

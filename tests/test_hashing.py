@@ -74,3 +74,15 @@ def test_nonfinite_numbers_cannot_be_hashed() -> None:
     """RFC 8785 §3.2.2.3: NaN and Infinity are not representable; serialisation must fail."""
     with pytest.raises(Exception):  # noqa: B017 - the library's own error type
         canonical_json({"x": float("nan")})
+
+
+def test_canonical_text_reads_back_to_the_same_bytes() -> None:
+    """RFC 8785 §3.2.2.3 writes doubles from 2**53 up to 1e21 as plain digits (ECMAScript
+    Number::toString); reading them back must give the doubles again, so re-canonicalizing is
+    the identity. A genuine integer of 2**53 + 1 is not a double's canonical form and stays int."""
+    from service.hashing import load_canonical
+
+    text = canonical_json({"a": 1e20, "b": -8.333333333333333e18, "c": 9007199254740992.0, "d": 3})
+    assert text == b'{"a":100000000000000000000,"b":-8333333333333333000,"c":9007199254740992,"d":3}'
+    assert canonical_json(load_canonical(text)) == text
+    assert load_canonical(b"[9007199254740993]") == [9007199254740993]

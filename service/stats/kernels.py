@@ -1,7 +1,9 @@
-"""Compiled inner loops of the bootstrap (numba): per-replicate sums and omission tallies.
+"""Compiled inner loops of the bootstrap (numba): subject draws, resampled means, presence, and the
+jackknife-after-bootstrap sums.
 
-Both loops run replicate by replicate and add in draw order, so a result never depends on where a
-chunk ends. They release the GIL, so analyses in the service's thread pool run side by side.
+Draws come from one xoshiro256** stream per stratum and each replicate consumes its draws in order,
+so a result never depends on where a chunk ends. The loops release the GIL, so analyses in the
+service's thread pool run side by side.
 """
 
 from __future__ import annotations
@@ -11,144 +13,6 @@ from typing import Any
 import numba
 import numpy as np
 from numpy.typing import NDArray
-
-
-@numba.njit(cache=True, nogil=True)
-def _means_and_presence(index: Any, columns: Any, out: Any, present: Any) -> None:  # pragma: no cover
-    # Column means in draw order (two running sums per column: even and odd draws) and a bitset
-    # of the subjects present in each replicate (64 per word), in one pass over the draws.
-    c, n = index.shape
-    k = columns.shape[0]
-    words = present.shape[1]
-    half = n // 2
-    x0 = columns[0]
-    x1 = columns[1 % k]
-    x2 = columns[2 % k]
-    one = np.uint64(1)
-    for b in range(c):
-        row = index[b]
-        for w in range(words):
-            present[b, w] = 0
-        a0 = a1 = a2 = 0.0
-        b0 = b1 = b2 = 0.0
-        if words == 1:
-            bits = np.uint64(0)
-            for t in range(half):
-                i = row[2 * t]
-                j = row[2 * t + 1]
-                a0 += x0[i]
-                b0 += x0[j]
-                a1 += x1[i]
-                b1 += x1[j]
-                a2 += x2[i]
-                b2 += x2[j]
-                bits |= (one << np.uint64(i)) | (one << np.uint64(j))
-            if n % 2:
-                i = row[n - 1]
-                a0 += x0[i]
-                a1 += x1[i]
-                a2 += x2[i]
-                bits |= one << np.uint64(i)
-            present[b, 0] = bits
-        else:
-            for t in range(half):
-                i = row[2 * t]
-                j = row[2 * t + 1]
-                a0 += x0[i]
-                b0 += x0[j]
-                a1 += x1[i]
-                b1 += x1[j]
-                a2 += x2[i]
-                b2 += x2[j]
-                present[b, i >> 6] |= one << np.uint64(i & 63)
-                present[b, j >> 6] |= one << np.uint64(j & 63)
-            if n % 2:
-                i = row[n - 1]
-                a0 += x0[i]
-                a1 += x1[i]
-                a2 += x2[i]
-                present[b, i >> 6] |= one << np.uint64(i & 63)
-        out[b, 0] = (a0 + b0) / n
-        if k > 1:
-            out[b, 1] = (a1 + b1) / n
-        if k > 2:
-            out[b, 2] = (a2 + b2) / n
-        for col in range(3, k):  # further columns, one at a time, in the same order
-            xc = columns[col]
-            s0 = 0.0
-            s1 = 0.0
-            for t in range(half):
-                s0 += xc[row[2 * t]]
-                s1 += xc[row[2 * t + 1]]
-            if n % 2:
-                s0 += xc[row[n - 1]]
-            out[b, col] = (s0 + s1) / n
-
-
-@numba.njit(cache=True, nogil=True)
-def _omission_sums(present: Any, n: int, finite: Any, centred: Any, omitted: Any) -> None:  # pragma: no cover
-    c, words = present.shape
-    one = np.uint64(1)
-    for b in range(c):
-        if not finite[b]:
-            continue
-        d = centred[b]
-        dd = d * d
-        for w in range(words):
-            bits = present[b, w]
-            base = w * 64
-            top = min(64, n - base)
-            for j in range(top):
-                if not (bits >> np.uint64(j)) & one:
-                    omitted[0, base + j] += 1.0
-                    omitted[1, base + j] += d
-                    omitted[2, base + j] += dd
-
-
-def means_and_presence(
-    index: NDArray[np.uint32], data: NDArray[np.float64]
-) -> tuple[NDArray[np.float64], NDArray[np.uint64]]:
-    """Column means of data[index[b]] for each replicate b (Efron & Tibshirani 1993 ch. 6), and
-    which subjects each replicate contains (bit i % 64 of word i // 64)."""
-    c, n = index.shape
-    out = np.empty((c, data.shape[1]), dtype=np.float64)
-    present = np.empty((c, (n + 63) // 64), dtype=np.uint64)
-    _means_and_presence(index, np.ascontiguousarray(data.T), out, present)
-    return out, present
-
-
-@numba.njit(cache=True, nogil=True)
-def _omission_sums_bytes(
-    present: Any, finite: Any, centred: Any, omitted: Any
-) -> None:  # pragma: no cover - compiled
-    c, n = present.shape
-    for b in range(c):
-        if not finite[b]:
-            continue
-        d = centred[b]
-        dd = d * d
-        row = present[b]
-        for i in range(n):
-            if row[i] == 0:
-                omitted[0, i] += 1.0
-                omitted[1, i] += d
-                omitted[2, i] += dd
-
-
-def add_omission_sums(
-    present: NDArray[Any],
-    n: int,
-    finite: NDArray[np.bool_],
-    centred: NDArray[np.float64],
-    omitted: NDArray[np.float64],
-) -> None:
-    """For every subject i, add over the finite replicates that do not contain i the terms
-    [1, θ*−θ̂, (θ*−θ̂)²] (the sums behind jackknife-after-bootstrap, Efron 1992 §3).
-    ``present`` holds 64-bit bitsets (uint64, one bit per subject) or one byte per subject."""
-    if present.dtype == np.uint8:
-        _omission_sums_bytes(present, finite, centred, omitted)
-    else:
-        _omission_sums(present, n, finite, centred, omitted)
 
 
 @numba.njit(inline="always")
@@ -185,102 +49,185 @@ def _draw_one(
             return s0, s1, s2, s3, spare, have, np.int64(m >> np.uint64(32))
 
 
+@numba.njit(inline="always")
+def _mark(present: Any, b: int, bits: Any, i: Any, bitset: bool) -> Any:  # pragma: no cover
+    if bitset:
+        return bits | (np.uint64(1) << np.uint64(i))
+    present[b, i] = 1
+    return bits
+
+
 @numba.njit(cache=True, nogil=True)
 def _draw_subjects(
-    state: Any, size: int, threshold: int, columns: Any, out: Any, present: Any, index: Any
+    states: Any, members: Any, bounds: Any, thresholds: Any, columns: Any,
+    out: Any, present: Any, index: Any, row: Any,
 ) -> None:  # pragma: no cover - compiled
-    # Means are summed in draw order with two running sums per column (even and odd draws), which
-    # halves the add-latency chain. Presence: a register bitset when size ≤ 64 (present is c × 1
-    # uint64), else plain stores of 1 into a zeroed c × size byte array (no read-modify-write
-    # chains).
-    # `index` (c × size, or 0 × 0) receives the draws when a caller wants to see them.
+    # Per replicate, stratum s fills row[bounds[s]:bounds[s+1]] with its own members, drawn from
+    # its own stream, two draws at a time. The first three column sums are formed in the same pass
+    # in draw order, with two running sums per column (first and second draw of each pair) to
+    # halve the add-latency chain; further columns are summed over the row afterwards. Presence:
+    # a register bitset when there are ≤ 64 subjects (present is c × 1 uint64), else plain stores
+    # of 1 into a zeroed c × n byte array. `index` (c × n, or 0 × 0) receives the draws if asked;
+    # the row of draws is kept only when it is needed (that, or more than three columns).
     c = out.shape[0]
-    k = columns.shape[0]
-    bitset = size <= 64
-    keep = index.shape[0] > 0
-    s0, s1, s2, s3, spare = state[0], state[1], state[2], state[3], state[4]
-    have = state[5] != 0
-    usize = np.uint64(size)
-    uthreshold = np.uint64(threshold)
-    one = np.uint64(1)
+    k, n = columns.shape
+    bitset = n <= 64
+    keep = index.shape[0] > 0 or k > 3
+    whole = states.shape[0] == 1  # one stratum of everybody: members[u] is u
     x0 = columns[0]
     x1 = columns[1 % k]
     x2 = columns[2 % k]
-    half = size // 2
     for b in range(c):
         a0 = a1 = a2 = 0.0
         e0 = e1 = e2 = 0.0
         bits = np.uint64(0)
-        for t in range(half):
-            s0, s1, s2, s3, spare, have, i = _draw_one(
-                s0, s1, s2, s3, spare, have, usize, uthreshold)
-            s0, s1, s2, s3, spare, have, j = _draw_one(
-                s0, s1, s2, s3, spare, have, usize, uthreshold)
-            a0 += x0[i]
-            e0 += x0[j]
-            a1 += x1[i]
-            e1 += x1[j]
-            a2 += x2[i]
-            e2 += x2[j]
-            if bitset:
-                bits |= (one << np.uint64(i)) | (one << np.uint64(j))
-            else:
-                present[b, i] = 1
-                present[b, j] = 1
-            if keep:
-                index[b, 2 * t] = i
-                index[b, 2 * t + 1] = j
-        if size % 2:
-            s0, s1, s2, s3, spare, have, i = _draw_one(
-                s0, s1, s2, s3, spare, have, usize, uthreshold)
-            a0 += x0[i]
-            a1 += x1[i]
-            a2 += x2[i]
-            if bitset:
-                bits |= one << np.uint64(i)
-            else:
-                present[b, i] = 1
-            if keep:
-                index[b, size - 1] = i
-        out[b, 0] = (a0 + e0) / size
-        if k > 1:
-            out[b, 1] = (a1 + e1) / size
-        if k > 2:
-            out[b, 2] = (a2 + e2) / size
+        for s in range(states.shape[0]):
+            s0, s1, s2, s3, spare = states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4]
+            have = states[s, 5] != 0
+            start, stop = bounds[s], bounds[s + 1]
+            size = np.uint64(stop - start)
+            threshold = thresholds[s]
+            t = start
+            while t + 1 < stop:
+                s0, s1, s2, s3, spare, have, u = _draw_one(
+                    s0, s1, s2, s3, spare, have, size, threshold)
+                s0, s1, s2, s3, spare, have, v = _draw_one(
+                    s0, s1, s2, s3, spare, have, size, threshold)
+                i = u if whole else members[start + u]
+                j = v if whole else members[start + v]
+                if keep:
+                    row[t] = i
+                    row[t + 1] = j
+                a0 += x0[i]
+                e0 += x0[j]
+                a1 += x1[i]
+                e1 += x1[j]
+                a2 += x2[i]
+                e2 += x2[j]
+                bits = _mark(present, b, bits, i, bitset)
+                bits = _mark(present, b, bits, j, bitset)
+                t += 2
+            if t < stop:
+                s0, s1, s2, s3, spare, have, u = _draw_one(
+                    s0, s1, s2, s3, spare, have, size, threshold)
+                i = u if whole else members[start + u]
+                if keep:
+                    row[t] = i
+                a0 += x0[i]
+                a1 += x1[i]
+                a2 += x2[i]
+                bits = _mark(present, b, bits, i, bitset)
+            states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4] = s0, s1, s2, s3, spare
+            states[s, 5] = np.uint64(1) if have else np.uint64(0)
         if bitset:
             present[b, 0] = bits
-    state[0], state[1], state[2], state[3], state[4] = s0, s1, s2, s3, spare
-    state[5] = one if have else np.uint64(0)
+        out[b, 0] = (a0 + e0) / n
+        if k > 1:
+            out[b, 1] = (a1 + e1) / n
+        if k > 2:
+            out[b, 2] = (a2 + e2) / n
+        for col in range(3, k):
+            xc = columns[col]
+            total = 0.0
+            for t in range(n):
+                total += xc[row[t]]
+            out[b, col] = total / n
+        if index.shape[0] > 0:
+            for t in range(n):
+                index[b, t] = row[t]
+
+
+@numba.njit(cache=True, nogil=True)
+def _omission_sums_bits(
+    present: Any, n: int, finite: Any, centred: Any, omitted: Any
+) -> None:  # pragma: no cover - compiled
+    one = np.uint64(1)
+    for b in range(present.shape[0]):
+        if not finite[b]:
+            continue
+        d = centred[b]
+        dd = d * d
+        bits = present[b, 0]
+        for i in range(n):
+            if not (bits >> np.uint64(i)) & one:
+                omitted[0, i] += 1.0
+                omitted[1, i] += d
+                omitted[2, i] += dd
+
+
+@numba.njit(cache=True, nogil=True)
+def _omission_sums_bytes(
+    present: Any, finite: Any, centred: Any, omitted: Any
+) -> None:  # pragma: no cover - compiled
+    c, n = present.shape
+    for b in range(c):
+        if not finite[b]:
+            continue
+        d = centred[b]
+        dd = d * d
+        row = present[b]
+        for i in range(n):
+            if row[i] == 0:
+                omitted[0, i] += 1.0
+                omitted[1, i] += d
+                omitted[2, i] += dd
+
+
+def add_omission_sums(
+    present: NDArray[Any],
+    n: int,
+    finite: NDArray[np.bool_],
+    centred: NDArray[np.float64],
+    omitted: NDArray[np.float64],
+) -> None:
+    """For every subject i, add over the finite replicates that do not contain i the terms
+    [1, θ*−θ̂, (θ*−θ̂)²] (the sums behind jackknife-after-bootstrap, Efron 1992 §3).
+    ``present`` is what SubjectDraws.draw returns: bitsets (n ≤ 64) or one byte per subject."""
+    if present.dtype == np.uint8:
+        _omission_sums_bytes(present, finite, centred, omitted)
+    else:
+        _omission_sums_bits(present, n, finite, centred, omitted)
 
 
 class SubjectDraws:
-    """Whole-subject bootstrap samples of an (n × k ≤ 3) table, drawn in order from one
-    xoshiro256** stream seeded by a SeedSequence: replicate b always gets the same draws however
-    the replicates are split into chunks."""
+    """Whole-subject bootstrap samples of an (n × k) table, stratified or not: SeedSequence(seed)
+    spawns one xoshiro256** stream per stratum (one stratum of everybody without strata), and each
+    replicate draws, per stratum, as many of its members as it has. Replicate b always gets the
+    same draws however the replicates are split into chunks."""
 
-    def __init__(self, seed: np.random.SeedSequence, data: NDArray[np.float64]) -> None:
-        if data.shape[1] > 3:
-            raise ValueError("SubjectDraws averages at most 3 columns")
-        self._state = np.zeros(6, dtype=np.uint64)
-        self._state[:4] = seed.generate_state(4, dtype=np.uint64)
-        if not self._state[:4].any():  # the one state xoshiro cannot leave
-            self._state[0] = 1
+    def __init__(
+        self, seed: int, data: NDArray[np.float64], strata: NDArray[np.int64] | None = None
+    ) -> None:
+        n = data.shape[0]
+        if strata is None:
+            groups = [np.arange(n, dtype=np.int64)]
+        else:
+            groups = [np.flatnonzero(strata == code).astype(np.int64) for code in np.unique(strata)]
+        children = np.random.SeedSequence(seed).spawn(len(groups))
+        self._states = np.zeros((len(groups), 6), dtype=np.uint64)
+        for s, child in enumerate(children):
+            self._states[s, :4] = child.generate_state(4, dtype=np.uint64)
+            if not self._states[s, :4].any():  # the one state xoshiro cannot leave
+                self._states[s, 0] = 1
+        self._members = np.concatenate(groups)
+        self._bounds = np.cumsum([0] + [g.size for g in groups]).astype(np.int64)
+        self._thresholds = np.array([(1 << 32) % g.size for g in groups], dtype=np.uint64)
         self._columns = np.ascontiguousarray(data.T)
-        self._size = data.shape[0]
-        self._threshold = (1 << 32) % self._size
+        self._row = np.empty(n, dtype=np.int64)
 
     def draw(
         self, replicates: int, keep_index: bool = False
     ) -> tuple[NDArray[np.float64], NDArray[Any], NDArray[np.int64]]:
         """(means (replicates × k), presence (bitsets for n ≤ 64, else bytes), the draws or an
         empty array)."""
-        n = self._size
-        means = np.empty((replicates, self._columns.shape[0]), dtype=np.float64)
+        k, n = self._columns.shape
+        means = np.empty((replicates, k), dtype=np.float64)
         present: NDArray[Any] = (
             np.empty((replicates, 1), dtype=np.uint64)
             if n <= 64
             else np.zeros((replicates, n), dtype=np.uint8)
         )
         index = np.empty((replicates, n) if keep_index else (0, 0), dtype=np.int64)
-        _draw_subjects(self._state, n, self._threshold, self._columns, means, present, index)
+        _draw_subjects(self._states, self._members, self._bounds, self._thresholds,
+                       self._columns, means, present, index, self._row)
         return means, present, index

@@ -5,13 +5,11 @@ means to estimates (...). Subjects are resampled as whole rows. Replicates whose
 finite (e.g. a zero denominator) are excluded from every quantile, mean and standard error, and
 counted in ``nonfinite_replicates``.
 
-Random subject indices: one ``numpy.random.SeedSequence(seed)`` per analysis.
-Without strata (k ≤ 3 columns) the SeedSequence seeds one xoshiro256** stream (Blackman & Vigna 2021)
-read as 32-bit lanes and mapped to subjects by Lemire's multiply-and-reject method (kernels.py), with
-the resampled means formed in the same compiled pass. With strata, the SeedSequence spawns one child
-(PCG64) per stratum; each stratum's generator yields a stream of 32-bit words; a word x is accepted
-when x < n_s·q with q = ⌊2³²/n_s⌋ and mapped to x // q. Both mappings are exactly uniform. Replicate
-b takes the next draws of each stream in order, so the chunk size never changes a number.
+Random subject indices: ``numpy.random.SeedSequence(seed)`` spawns one xoshiro256** stream
+(Blackman & Vigna 2021) per stratum, or one for all subjects without strata; 32-bit lanes of it are
+mapped to members of the stratum by Lemire's multiply-and-reject method, which is exactly uniform
+(kernels.py). Replicate b takes the next draws of each stream in order, so the chunk size never
+changes a number.
 """
 
 from __future__ import annotations
@@ -32,13 +30,12 @@ from service.stats.diagnostics import Diagnostic
 __all__ = ["Bootstrap", "Diagnostic", "Histogram", "Intervals", "Jackknife", "MonteCarloError",
            "bootstrap", "jackknife", "leave_one_out_values", "summarise_jackknife"]
 
-_WORD = 1 << 32
 FloatArray = NDArray[np.float64]
 MeansStatistic = Callable[[FloatArray], FloatArray]
 
-# About this many subject indices per chunk keeps every chunk array cache-sized (512 kB as
-# float64) and lets the allocator reuse them instead of faulting in fresh pages each chunk.
-CHUNK_INDICES = 1 << 16
+# Draws per chunk: a chunk keeps only its means and presence flags (at most one byte per draw),
+# so this bounds the per-chunk memory at about 256 kB whatever B is.
+CHUNK_INDICES = 1 << 18
 
 
 @dataclass(frozen=True)
@@ -116,47 +113,8 @@ def summarise_jackknife(values: FloatArray, theta_hat: float) -> Jackknife:
     return Jackknife(listed, mean, bias, se, theta_hat - bias)
 
 
-class _IndexStream:
-    """Exactly uniform integers in [0, size) from one generator, consumed in order."""
-
-    def __init__(self, generator: np.random.Generator, size: int) -> None:
-        self._bits = generator.bit_generator
-        self._size = size
-        self._q = _WORD // size
-        self._limit = self._q * size
-        self._left = np.empty(0, dtype=np.uint32)
-
-    def _accepted(self, count: int) -> NDArray[np.uint32]:
-        words = np.asarray(self._bits.random_raw((count + 1) // 2), dtype="<u8").view("<u4")
-        words = words.astype(np.uint32, copy=False)
-        if self._limit != _WORD and bool(np.any(words >= self._limit)):
-            words = words[words < self._limit]
-        return words
-
-    def take(self, count: int) -> NDArray[np.uint32]:
-        """The next ``count`` values, as uint32."""
-        if self._size == 1:  # a one-subject stratum: nothing random to draw (and q = 2³² overflows)
-            return np.zeros(count, dtype=np.uint32)
-        parts = [self._left] if self._left.size else []
-        have = self._left.size
-        while have < count:
-            words = self._accepted(count - have)
-            parts.append(words)
-            have += words.size
-        words = parts[0] if len(parts) == 1 else np.concatenate(parts)
-        self._left = words[count:].copy()
-        return words[:count] // np.uint32(self._q)
-
-
-def _strata_members(n: int, strata: NDArray[np.int64] | None) -> list[NDArray[np.intp]]:
-    if strata is None:
-        return [np.arange(n, dtype=np.intp)]
-    return [np.flatnonzero(strata == code).astype(np.intp) for code in np.unique(strata)]
-
-
-def default_chunk_size(n: int, compiled_draws: bool = False) -> int:
-    # The compiled path keeps no index matrix, so it can take larger chunks for the same memory.
-    return max(1024, (4 * CHUNK_INDICES) // n) if compiled_draws else max(64, CHUNK_INDICES // n)
+def default_chunk_size(n: int) -> int:
+    return max(1024, CHUNK_INDICES // n)
 
 
 def bootstrap(
@@ -179,34 +137,17 @@ def bootstrap(
     ``deadline`` is a time.monotonic() value: once it has passed, the loop stops before the
     next chunk and raises ComputeTimeExceeded (no partial result is returned)."""
     n, _ = data.shape
-    members = _strata_members(n, strata)  # no strata: one stratum of all subjects
-    children = np.random.SeedSequence(seed).spawn(len(members))
-    streams = [
-        _IndexStream(np.random.Generator(np.random.PCG64(child)), m.size)
-        for child, m in zip(children, members, strict=True)
-    ]
-    chunk = chunk_size if chunk_size is not None else default_chunk_size(n, strata is None)
+    draws = kernels.SubjectDraws(seed, data, strata)
+    chunk = chunk_size if chunk_size is not None else default_chunk_size(n)
     theta_star = np.empty(replicates, dtype=np.float64)
     # Per subject i: Σ over replicates omitting i of [1, θ*−θ̂, (θ*−θ̂)²] (finite replicates only).
     omitted = np.zeros((3, n), dtype=np.float64)
-    single = strata is None and data.shape[1] <= 3
-    if single:
-        draws = kernels.SubjectDraws(np.random.SeedSequence(seed), data)
     done = 0
     while done < replicates:
         if deadline is not None and time.monotonic() > deadline:
             raise ComputeTimeExceeded(done, replicates)
         c = min(chunk, replicates - done)
-        if single:
-            means, present, _ = draws.draw(c)
-        else:
-            index = np.empty((c, n), dtype=np.uint32)
-            start = 0
-            for stream, m in zip(streams, members, strict=True):
-                picks = stream.take(c * m.size).reshape(c, m.size)
-                index[:, start : start + m.size] = m.astype(np.uint32)[picks]
-                start += m.size
-            means, present = kernels.means_and_presence(index, data)
+        means, present, _ = draws.draw(c)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             theta = np.asarray(statistic(means), dtype=np.float64)
         finite = np.isfinite(theta)

@@ -22,7 +22,7 @@ import rfc8785
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from service.hashing import canonical_json
+from service.hashing import canonical_json, load_canonical
 from service.records import build_record
 from service.tables import InvalidRequest, normalize_request, parse_csv_body, parse_json_body
 
@@ -357,6 +357,6 @@ def test_accepted_requests_build_a_nan_free_record(raw: dict[str, Any]) -> None:
     text = json.dumps(record, allow_nan=False)
     assert json.loads(text)["inputs_sha256"] == record["inputs_sha256"]
     canonical = canonical_json(record)
-    assert canonical_json(json.loads(canonical)) == canonical
+    assert canonical_json(load_canonical(canonical)) == canonical
     for warning in record["result"]["warnings"]:
         assert isinstance(warning.get("code"), str) and warning["code"]

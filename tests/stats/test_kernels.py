@@ -11,36 +11,29 @@ from service.stats import kernels
 @pytest.mark.parametrize(("n", "k"), [(1, 1), (7, 2), (24, 3), (25, 3), (40, 5), (64, 3), (130, 4)])
 def test_resampled_means_equal_numpy_gather(n: int, k: int) -> None:
     """Definition of a bootstrap sample mean (Efron & Tibshirani 1993 ch. 6): the column means of
-    the drawn rows, here by numpy fancy indexing."""
-    rng = np.random.default_rng(n * 10 + k)
-    data = rng.normal(size=(n, k))
-    index = rng.integers(0, n, size=(50, n)).astype(np.uint32)
-    expected = data[index].mean(axis=1)
-    means, present = kernels.means_and_presence(index, data)
-    np.testing.assert_allclose(means, expected, rtol=1e-13, atol=1e-13)
-    for b in range(index.shape[0]):
-        members = {i for i in range(n) if int(present[b, i // 64]) >> (i % 64) & 1}
-        assert members == set(index[b].tolist())
+    the drawn rows, here by numpy fancy indexing of the draws the kernel reports."""
+    data = np.random.default_rng(n * 10 + k).normal(size=(n, k))
+    means, _, index = kernels.SubjectDraws(n + k, data).draw(50, keep_index=True)
+    np.testing.assert_allclose(means, data[index].mean(axis=1), rtol=1e-13, atol=1e-13)
 
 
-def test_omission_sums_equal_brute_force() -> None:
-    """Jackknife-after-bootstrap sums (Efron 1992 §3): for subject i, the count, sum and sum of
-    squares of θ*−θ̂ over the finite replicates whose sample does not contain i; computed here with
-    an explicit numpy mask."""
-    rng = np.random.default_rng(4)
-    n, c = 70, 300
-    index = rng.integers(0, n, size=(c, n)).astype(np.uint32)
-    centred = rng.normal(size=c)
-    finite = rng.random(c) > 0.1
-    omitted = np.zeros((3, n))
-    _, bits = kernels.means_and_presence(index, rng.normal(size=(n, 3)))
-    kernels.add_omission_sums(bits, n, finite, centred, omitted)
-    present = np.zeros((c, n), dtype=bool)
-    np.put_along_axis(present, index.astype(np.intp), True, axis=1)
-    absent = (~present) & finite[:, None]
-    np.testing.assert_array_equal(omitted[0], absent.sum(0))
-    np.testing.assert_allclose(omitted[1], (absent * centred[:, None]).sum(0), rtol=1e-12)
-    np.testing.assert_allclose(omitted[2], (absent * centred[:, None] ** 2).sum(0), rtol=1e-12)
+def test_stratified_draws_stay_in_their_strata_and_are_uniform() -> None:
+    """Stratified bootstrap (Efron & Tibshirani 1993 §6.5 — from memory): each replicate draws, per
+    stratum, as many of its members as it has; within a stratum the draws fit the uniform
+    distribution (Pearson's chi-square, scipy.stats.chisquare)."""
+    from scipy import stats
+
+    strata = np.array([2, 0, 1, 0, 2, 2, 1, 0, 0, 2, 1], dtype=np.int64)
+    data = np.zeros((strata.size, 1))
+    _, _, index = kernels.SubjectDraws(9, data, strata).draw(20_000, keep_index=True)
+    start = 0
+    for code in (0, 1, 2):
+        members = np.flatnonzero(strata == code)
+        block = index[:, start : start + members.size]
+        assert set(np.unique(block)) == set(members.tolist())
+        counts = np.bincount(block.ravel(), minlength=strata.size)[members]
+        assert stats.chisquare(counts).pvalue > 1e-3
+        start += members.size
 
 
 def _xoshiro256ss_reference(state: list[int], count: int) -> list[int]:
@@ -70,10 +63,10 @@ def test_subject_draws_follow_xoshiro_and_lemire_exactly(n: int) -> None:
     """The draws equal an independent Python rendering of xoshiro256** (two 32-bit lanes per output,
     low first) mapped by Lemire's method (Lemire 2019, ACM TOMACS 29:3): high word of x·n, rejecting
     lanes whose low word is below 2³² mod n; means equal numpy's mean of the drawn rows."""
-    seed = np.random.SeedSequence(77)
-    state = [int(v) for v in seed.generate_state(4, dtype=np.uint64)]
+    child = np.random.SeedSequence(77).spawn(1)[0]
+    state = [int(v) for v in child.generate_state(4, dtype=np.uint64)]
     data = np.random.default_rng(1).normal(size=(n, 3))
-    means, _, index = kernels.SubjectDraws(np.random.SeedSequence(77), data).draw(5, keep_index=True)
+    means, _, index = kernels.SubjectDraws(77, data).draw(5, keep_index=True)
     lanes = []
     for word in _xoshiro256ss_reference(state, 5 * n + 10):
         lanes += [word & 0xFFFFFFFF, word >> 32]
@@ -87,8 +80,8 @@ def test_subject_draws_do_not_depend_on_chunking() -> None:
     """Chunk invariance (DESIGN.md: chunk size must not change any number): 7 + 10 + 1 replicates
     drawn in pieces equal 18 drawn at once, bit for bit."""
     data = np.random.default_rng(2).normal(size=(13, 3))
-    whole = kernels.SubjectDraws(np.random.SeedSequence(5), data).draw(18, keep_index=True)
-    draws = kernels.SubjectDraws(np.random.SeedSequence(5), data)
+    whole = kernels.SubjectDraws(5, data).draw(18, keep_index=True)
+    draws = kernels.SubjectDraws(5, data)
     pieces = [draws.draw(c, keep_index=True) for c in (7, 10, 1)]
     for part in range(3):
         np.testing.assert_array_equal(whole[part], np.concatenate([p[part] for p in pieces]))
@@ -100,7 +93,7 @@ def test_subject_draws_are_uniform() -> None:
     from scipy import stats
 
     data = np.zeros((7, 1))
-    _, _, index = kernels.SubjectDraws(np.random.SeedSequence(3), data).draw(100_000, keep_index=True)
+    _, _, index = kernels.SubjectDraws(3, data).draw(100_000, keep_index=True)
     counts = np.bincount(index.ravel(), minlength=7)
     assert stats.chisquare(counts).pvalue > 1e-3
 
@@ -128,7 +121,7 @@ def test_drawn_presence_and_omission_sums_match_the_draws(n: int) -> None:
     """Presence (bitsets up to 64 subjects, bytes beyond) marks exactly the drawn subjects, and the
     jackknife-after-bootstrap sums (Efron 1992 §3) from it equal an explicit numpy mask."""
     data = np.random.default_rng(n).normal(size=(n, 3))
-    _, present, index = kernels.SubjectDraws(np.random.SeedSequence(n), data).draw(
+    _, present, index = kernels.SubjectDraws(n, data).draw(
         200, keep_index=True)
     mask = np.zeros((200, n), dtype=bool)
     np.put_along_axis(mask, index, True, axis=1)

@@ -120,6 +120,7 @@ def test_identical_subjects_fall_back_without_nan() -> None:
     codes = {d["code"] for d in out["diagnostics"]}  # type: ignore[union-attr, index]
     assert "acceleration_undefined" in codes
     assert out["bootstrap"]["acceleration"] == 0.0  # type: ignore[index]
+    # (55 − 50)/(50 − 25) by the θ formula of DESIGN.md
     assert out["estimate"]["theta"] == pytest.approx(0.2)  # type: ignore[index]
 
 

@@ -165,15 +165,6 @@ def test_stratified_resampling_keeps_stratum_sizes() -> None:
     assert free.standard_error is not None and free.standard_error > 0.01
 
 
-def test_index_stream_is_uniform() -> None:
-    """Source: scipy.stats.chisquare goodness of fit to the discrete uniform distribution."""
-    stream = rs._IndexStream(np.random.Generator(np.random.PCG64(5)), 23)
-    draws = stream.take(230_000)
-    counts = np.bincount(draws, minlength=23)
-    assert stats.chisquare(counts).pvalue > 1e-4
-    assert draws.max() == 22
-
-
 def test_jackknife_after_bootstrap_error_of_mean_se() -> None:
     """Published approximation (Efron & Tibshirani 1993 eq. 19.7 — from memory): for the sample
     mean of normal data the SE of the bootstrap SE is about SE/√(2(n−1)) from sampling; the
