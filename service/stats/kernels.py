@@ -60,33 +60,36 @@ def _mark(present: Any, b: int, bits: Any, i: Any, bitset: bool) -> Any:  # prag
 @numba.njit(cache=True, nogil=True)
 def _draw_subjects(
     states: Any, members: Any, bounds: Any, thresholds: Any, columns: Any,
-    out: Any, present: Any, index: Any, row: Any,
+    out: Any, present: Any, index: Any,
 ) -> None:  # pragma: no cover - compiled
-    # Per replicate, stratum s fills row[bounds[s]:bounds[s+1]] with its own members, drawn from
-    # its own stream, two draws at a time. The first three column sums are formed in the same pass
-    # in draw order, with two running sums per column (first and second draw of each pair) to
-    # halve the add-latency chain; further columns are summed over the row afterwards. Presence:
-    # a register bitset when there are ≤ 64 subjects (present is c × 1 uint64), else plain stores
-    # of 1 into a zeroed c × n byte array. `index` (c × n, or 0 × 0) receives the draws if asked;
-    # the row of draws is kept only when it is needed (that, or more than three columns).
+    # Stratum by stratum (its stream state stays in registers across the chunk), replicate b
+    # draws the stratum's members two at a time into index[b, bounds[s]:bounds[s+1]] (when index
+    # is c × n; it is 0 × 0 when nobody needs the draws). The first three column sums are formed
+    # in the same pass in draw order, with two running sums per column (first and second draw of
+    # each pair) to halve the add-latency chain, and added to out[b] stratum by stratum; further
+    # columns are summed from index afterwards. Presence: a bitset when there are ≤ 64 subjects
+    # (present is c × 1 uint64), else plain stores of 1 into a zeroed c × n byte array.
     c = out.shape[0]
     k, n = columns.shape
     bitset = n <= 64
-    keep = index.shape[0] > 0 or k > 3
+    keep = index.shape[0] > 0
     whole = states.shape[0] == 1  # one stratum of everybody: members[u] is u
     x0 = columns[0]
     x1 = columns[1 % k]
     x2 = columns[2 % k]
-    for b in range(c):
-        a0 = a1 = a2 = 0.0
-        e0 = e1 = e2 = 0.0
-        bits = np.uint64(0)
-        for s in range(states.shape[0]):
-            s0, s1, s2, s3, spare = states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4]
-            have = states[s, 5] != 0
-            start, stop = bounds[s], bounds[s + 1]
-            size = np.uint64(stop - start)
-            threshold = thresholds[s]
+    out[:, :] = 0.0
+    if bitset:
+        present[:, 0] = 0
+    for s in range(states.shape[0]):
+        s0, s1, s2, s3, spare = states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4]
+        have = states[s, 5] != 0
+        start, stop = bounds[s], bounds[s + 1]
+        size = np.uint64(stop - start)
+        threshold = thresholds[s]
+        for b in range(c):
+            a0 = a1 = a2 = 0.0
+            e0 = e1 = e2 = 0.0
+            bits = np.uint64(0)
             t = start
             while t + 1 < stop:
                 s0, s1, s2, s3, spare, have, u = _draw_one(
@@ -96,8 +99,8 @@ def _draw_subjects(
                 i = u if whole else members[start + u]
                 j = v if whole else members[start + v]
                 if keep:
-                    row[t] = i
-                    row[t + 1] = j
+                    index[b, t] = i
+                    index[b, t + 1] = j
                 a0 += x0[i]
                 e0 += x0[j]
                 a1 += x1[i]
@@ -112,29 +115,29 @@ def _draw_subjects(
                     s0, s1, s2, s3, spare, have, size, threshold)
                 i = u if whole else members[start + u]
                 if keep:
-                    row[t] = i
+                    index[b, t] = i
                 a0 += x0[i]
                 a1 += x1[i]
                 a2 += x2[i]
                 bits = _mark(present, b, bits, i, bitset)
-            states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4] = s0, s1, s2, s3, spare
-            states[s, 5] = np.uint64(1) if have else np.uint64(0)
-        if bitset:
-            present[b, 0] = bits
-        out[b, 0] = (a0 + e0) / n
-        if k > 1:
-            out[b, 1] = (a1 + e1) / n
-        if k > 2:
-            out[b, 2] = (a2 + e2) / n
+            out[b, 0] += a0 + e0
+            if k > 1:
+                out[b, 1] += a1 + e1
+            if k > 2:
+                out[b, 2] += a2 + e2
+            if bitset:
+                present[b, 0] |= bits
+        states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4] = s0, s1, s2, s3, spare
+        states[s, 5] = np.uint64(1) if have else np.uint64(0)
+    for b in range(c):
         for col in range(3, k):
             xc = columns[col]
             total = 0.0
             for t in range(n):
-                total += xc[row[t]]
-            out[b, col] = total / n
-        if index.shape[0] > 0:
-            for t in range(n):
-                index[b, t] = row[t]
+                total += xc[index[b, t]]
+            out[b, col] = total
+        for col in range(k):
+            out[b, col] /= n
 
 
 @numba.njit(cache=True, nogil=True)
@@ -213,7 +216,6 @@ class SubjectDraws:
         self._bounds = np.cumsum([0] + [g.size for g in groups]).astype(np.int64)
         self._thresholds = np.array([(1 << 32) % g.size for g in groups], dtype=np.uint64)
         self._columns = np.ascontiguousarray(data.T)
-        self._row = np.empty(n, dtype=np.int64)
 
     def draw(
         self, replicates: int, keep_index: bool = False
@@ -227,7 +229,9 @@ class SubjectDraws:
             if n <= 64
             else np.zeros((replicates, n), dtype=np.uint8)
         )
-        index = np.empty((replicates, n) if keep_index else (0, 0), dtype=np.int64)
+        # the draws are kept when asked for, or when a fourth column must be summed from them
+        shape = (replicates, n) if keep_index or k > 3 else (0, 0)
+        index = np.empty(shape, dtype=np.int64)
         _draw_subjects(self._states, self._members, self._bounds, self._thresholds,
-                       self._columns, means, present, index, self._row)
+                       self._columns, means, present, index)
         return means, present, index
