@@ -38,7 +38,7 @@ from sqlalchemy.engine import make_url
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from service.archive import Archive  # noqa: E402
+from service.archive.store import Archive  # noqa: E402
 from tests.system.servers import free_port, small_request, start_server  # noqa: E402
 
 

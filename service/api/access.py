@@ -7,10 +7,11 @@ from dataclasses import dataclass
 
 from fastapi import Request
 
-from service.access import active_key_count, find_key, role_allows
 from service.api.problems import ProblemError
-from service.archive import Archive
-from service.config import ServiceSettings
+from service.api.settings import ServiceSettings
+from service.archive.keys import active_key_count, find_key
+from service.archive.roles import role_allows
+from service.archive.store import Archive
 
 # RFC 6750 §3: the challenge of a Bearer-protected resource; error= only when a token was sent.
 CHALLENGE = 'Bearer realm="bioparity"'

@@ -11,23 +11,19 @@ from starlette.concurrency import run_in_threadpool
 from starlette.responses import JSONResponse, Response
 
 from service.api.access import Caller, require
-from service.api.bodies import BodyKind, body_kind, read_body
+from service.api.bodies import body_kind, read_body
 from service.api.limits import check_work, idempotency_key, request_fingerprint, time_exceeded
 from service.api.problems import ProblemError, problem_responses
 from service.api.schemas import AnalysisPage, AnalysisRecord
-from service.archive import Archive, IdempotencyConflict
-from service.bundles import build_bundle
-from service.config import ServiceSettings
-from service.csvinput import parse_csv_with_lines, relocate_to_lines
-from service.records import build_record
-from service.reports import render_report
+from service.api.settings import ServiceSettings
+from service.archive.store import Archive, IdempotencyConflict
+from service.intake.csvinput import SETTING_FIELDS
+from service.intake.problems import InvalidRequest, Problem
+from service.intake.reading import BodyKind, read_request
+from service.records.building import build_record
+from service.report.bundles import build_bundle
+from service.report.rendering import render_report
 from service.stats.deadlines import ComputeTimeExceeded
-from service.tables import (
-    InvalidRequest,
-    Problem,
-    normalize_request,
-    parse_json_body,
-)
 
 # The report is self-contained (inline CSS and SVG, no script): forbid everything else.
 REPORT_SECURITY_POLICY = (
@@ -35,23 +31,7 @@ REPORT_SECURITY_POLICY = (
     "form-action 'none'; frame-ancestors 'none'"
 )
 
-# Flat query parameters of a CSV upload (validated by service.tables, listed here for the schema).
-CSV_QUERY_PARAMETERS: dict[str, tuple[str, str]] = {
-    "title": ("string", "study title"),
-    "analyte": ("string", "what was measured"),
-    "unit": ("string", "unit of the values"),
-    "test": ("string", "treatment label of the test arm"),
-    "reference": ("string", "treatment label of the reference arm"),
-    "baseline": ("string", "treatment label of the baseline/placebo arm, if any"),
-    "replicates": ("integer", "bootstrap replicates"),
-    "seed": ("integer", "seed of the resampling"),
-    "confidence_level": ("number", "confidence level of the intervals, e.g. 0.9"),
-    "interval": ("string", "percentile, basic, normal or bca"),
-    "limit_lower": ("number", "lower acceptance limit of the ratio parameter"),
-    "limit_upper": ("number", "upper acceptance limit of the ratio parameter"),
-    "stratify_by_sequence": ("boolean", "resample within sequence groups"),
-    "incomplete_subjects": ("string", "exclude or reject"),
-}
+CSV_QUERY_PARAMETERS = SETTING_FIELDS  # flat query parameters of a CSV upload
 
 ID_PATTERN = "^[0-9a-f]{32}$"
 
@@ -227,26 +207,7 @@ def _analyse_and_archive(
         )
         if earlier is not None:
             return earlier, True
-    lines: list[int] | None = None
-    if kind == "csv":
-        raw, lines = parse_csv_with_lines(body, query)
-    else:
-        if query:
-            raise InvalidRequest(
-                [
-                    Problem(("query", name), "query parameters are read only with text/csv "
-                            "uploads; put settings in the JSON body")
-                    for name in sorted(query)
-                ]
-            )
-        raw = parse_json_body(body)
-    _check_row_count(raw, settings.max_records)
-    try:
-        inputs = normalize_request(raw)
-    except InvalidRequest as exc:
-        if lines is None:
-            raise
-        raise InvalidRequest(relocate_to_lines(exc.problems, lines)) from None
+    inputs = read_request(kind, body, query, max_records=settings.max_records)
     check_work(inputs, settings.max_work)
     deadline = time.monotonic() + settings.max_compute_seconds
     try:
@@ -258,18 +219,6 @@ def _analyse_and_archive(
     return archive.insert_once(
         record, submitter=submitter, idempotency_key=key, request_sha256=fingerprint
     )
-
-
-def _check_row_count(raw: Any, max_records: int) -> None:
-    if not isinstance(raw, dict):
-        return  # normalize_request reports the wrong type
-    problems = [
-        Problem((field,), f"has {len(rows)} rows; this service accepts at most {max_records}")
-        for field in ("records", "profiles")
-        if isinstance(rows := raw.get(field), list) and len(rows) > max_records
-    ]
-    if problems:
-        raise InvalidRequest(problems)
 
 
 def _single_query_values(request: Request) -> dict[str, str]:

@@ -2,13 +2,10 @@
 
 from __future__ import annotations
 
-from typing import Literal
-
 from starlette.requests import Request
 
 from service.api.problems import ProblemError
-
-BodyKind = Literal["json", "csv"]
+from service.intake.reading import BodyKind
 
 _KINDS: dict[str, BodyKind] = {"application/json": "json", "text/csv": "csv"}
 _CHARSETS = {"utf-8", "utf8"}

@@ -12,10 +12,10 @@ from service.api.access import Caller, require
 from service.api.analyses import AnalysisId, ArchiveDep, stored_record
 from service.api.limits import check_work, time_exceeded
 from service.api.problems import problem_responses
-from service.config import ServiceSettings
-from service.reproduction import reproduce
+from service.api.settings import ServiceSettings
+from service.archive.verification import verification_to_json, verify_rows
+from service.records.reproduction import reproduce
 from service.stats.deadlines import ComputeTimeExceeded
-from service.verification import verification_to_json, verify_rows
 
 AUTH_PROBLEMS = (401, 403)
 

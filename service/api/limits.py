@@ -8,7 +8,7 @@ from typing import Any
 from starlette.requests import Request
 
 from service.api.problems import ProblemError
-from service.hashing import canonical_json, sha256_hex
+from service.records.hashing import canonical_json, sha256_hex
 from service.stats.deadlines import ComputeTimeExceeded
 
 MAX_IDEMPOTENCY_KEY_LENGTH = 200

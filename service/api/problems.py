@@ -12,7 +12,7 @@ from pydantic import BaseModel, Field
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import JSONResponse, Response
 
-from service.tables import InvalidRequest
+from service.intake.tables import InvalidRequest
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 

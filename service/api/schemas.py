@@ -6,8 +6,8 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, Field
 
-from service.requestmodels import Design, Profile, Settings, Study
-from service.requestmodels import Record as RequestRecord
+from service.intake.models import Design, Profile, Settings, Study
+from service.intake.models import Record as RequestRecord
 
 
 class AnalysisRecord(BaseModel):
@@ -38,7 +38,7 @@ class Health(BaseModel):
 
 
 class AnalysisRequest(BaseModel):
-    """The JSON request body (for the schema; service.tables validates every upload)."""
+    """The JSON request body (for the schema; service.intake.tables validates every upload)."""
 
     study: Study | None = None
     design: Design

@@ -18,8 +18,8 @@ import numpy as np
 import pytest
 from fastapi import FastAPI
 
-from service.app import create_app
-from service.config import ServiceSettings
+from service.api.app import create_app
+from service.api.settings import ServiceSettings
 
 SEQUENCES = {"TRB": ("T", "R", "B"), "RBT": ("R", "B", "T"), "BTR": ("B", "T", "R")}
 MEANS = {"B": 50.0, "R": 80.0, "T": 81.5}

@@ -11,10 +11,11 @@ import httpx
 import pytest
 from sqlalchemy import select
 
-from service.access import create_key, is_loopback, key_sha256, revoke_key
-from service.app import create_app
-from service.archive import api_keys
-from service.config import ServiceSettings
+from service.api.app import create_app
+from service.api.settings import ServiceSettings
+from service.archive.keys import create_key, key_sha256, revoke_key
+from service.archive.roles import is_loopback
+from service.archive.store import api_keys
 from tests.api.conftest import ApiClient, json_request
 
 MakeClient = Callable[..., ApiClient]

@@ -15,7 +15,7 @@ import pytest
 import rfc8785
 
 from service.api import analyses
-from service.records import build_record
+from service.records.building import build_record
 from tests.api.conftest import CSV_QUERY, ApiClient, csv_body, json_request, table_rows
 
 REPORT_POLICY = (

@@ -9,20 +9,20 @@ from pathlib import Path
 
 import pytest
 
-from service.app import create_app
-from service.archive import ArchiveError
-from service.config import ServiceSettings
+from service.api.app import create_app
+from service.api.settings import ServiceSettings
+from service.archive.store import ArchiveError
 
 ROOT = Path(__file__).resolve().parents[2]
 
 
 def test_import_creates_nothing(tmp_path: Path) -> None:
-    """Importing service.app opens no database: no ./var appears (app-factory pattern,
+    """Importing service.api.app opens no database: no ./var appears (app-factory pattern,
     common practice; checked in a fresh interpreter so no earlier import hides it)."""
     environment = {**os.environ, "PYTHONPATH": str(ROOT)}
     environment.pop("BIOPARITY_DATABASE_URL", None)
     completed = subprocess.run(
-        [sys.executable, "-c", "import service.app"],
+        [sys.executable, "-c", "import service.api.app"],
         cwd=tmp_path, env=environment, capture_output=True, timeout=60, check=False,
     )
     assert completed.returncode == 0, completed.stderr.decode()

@@ -11,8 +11,8 @@ from typing import Any
 import pytest
 import rfc8785
 
-from service.archive import Archive, ArchiveError
-from service.config import DEFAULT_DATABASE_URL, ServiceSettings, database_url_from_argument
+from service.api.settings import DEFAULT_DATABASE_URL, ServiceSettings, database_url_from_argument
+from service.archive.store import Archive, ArchiveError
 
 
 def small_record(i: int) -> dict[str, Any]:

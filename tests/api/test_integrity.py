@@ -14,8 +14,8 @@ from typing import Any
 import pytest
 import rfc8785
 
-from service.app import create_app
-from service.config import ServiceSettings
+from service.api.app import create_app
+from service.api.settings import ServiceSettings
 from tests.api.conftest import ApiClient, csv_body, json_request, table_rows
 from tests.api.test_archive import small_record
 
@@ -183,7 +183,7 @@ def test_idempotent_retry_returns_the_first_record(make_client: MakeClient) -> N
 def test_idempotency_keys_are_scoped_per_submitter(make_client: MakeClient) -> None:
     """Two API keys may use the same Idempotency-Key for their own requests (the key is scoped
     to its client, common practice)."""
-    from service.access import create_key
+    from service.archive.keys import create_key
 
     client = make_client()
     one = create_key(client.app.state.archive, label="one", role="submit")

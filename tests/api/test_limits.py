@@ -8,7 +8,7 @@ from collections.abc import Callable
 import numpy as np
 import pytest
 
-from service.config import ServiceSettings
+from service.api.settings import ServiceSettings
 from service.stats.deadlines import ComputeTimeExceeded
 from service.stats.ratio import theta_of_means
 from service.stats.resampling import bootstrap, leave_one_out_values

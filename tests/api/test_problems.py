@@ -9,7 +9,7 @@ from typing import Any
 import httpx
 import pytest
 
-from service.archive import Archive
+from service.archive.store import Archive
 from tests.api.conftest import ApiClient, json_request, table_rows
 
 PROBLEM_FIELDS = {"type", "title", "status", "detail", "errors"}

@@ -19,8 +19,8 @@ import httpx
 import numpy as np
 import pytest
 
-from service.app import create_app
-from service.config import ServiceSettings
+from service.api.app import create_app
+from service.api.settings import ServiceSettings
 from tests.api.conftest import ApiClient
 
 SCRIPT = '<script>alert("x")</script>'

@@ -33,9 +33,9 @@ from schemathesis.specs.openapi.checks import (
     status_code_conformance,
 )
 
-from service.access import create_key
-from service.app import create_app
-from service.config import ServiceSettings
+from service.api.app import create_app
+from service.api.settings import ServiceSettings
+from service.archive.keys import create_key
 from tests.api.conftest import csv_body, json_request, table_rows
 
 OPERATIONS = (

@@ -22,9 +22,9 @@ import rfc8785
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from service.hashing import canonical_json, load_canonical
-from service.records import build_record
-from service.tables import InvalidRequest, normalize_request, parse_csv_body, parse_json_body
+from service.intake.tables import InvalidRequest, normalize_request, parse_csv_body, parse_json_body
+from service.records.building import build_record
+from service.records.hashing import canonical_json, load_canonical
 
 ORDERS = {"TRB": ("T", "R", "B"), "RBT": ("R", "B", "T"), "BTR": ("B", "T", "R")}
 COLUMNS = ("subject", "period", "sequence", "treatment", "metric", "value")

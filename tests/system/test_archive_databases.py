@@ -13,7 +13,7 @@ import rfc8785
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 
-from service.archive import Archive, ArchiveError
+from service.archive.store import Archive, ArchiveError
 from tests.conftest import fresh_postgres_schema, postgres_base_url
 
 PROCESSES = 4

@@ -12,7 +12,7 @@ from typing import Any
 import httpx
 import rfc8785
 
-from service.archive import Archive
+from service.archive.store import Archive
 from tests.system.servers import Server, small_request
 
 CLIENTS = 16

@@ -13,7 +13,7 @@ from collections.abc import Callable
 import httpx
 from sqlalchemy.engine import make_url
 
-from service.archive import Archive
+from service.archive.store import Archive
 from tests.system.servers import Server, small_request
 
 CLIENTS = 8

@@ -1,0 +1,1 @@
+"""The archive: records, keys, idempotency, database engines and the hash chain."""

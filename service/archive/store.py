@@ -1,0 +1,360 @@
+"""The archive of analysis records: append-only, hash-chained; with engines.py, the only code that
+speaks SQL."""
+
+from __future__ import annotations
+
+import uuid
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+from sqlalchemy import (
+    Column,
+    Connection,
+    Engine,
+    Integer,
+    MetaData,
+    PrimaryKeyConstraint,
+    String,
+    Table,
+    Text,
+    func,
+    inspect,
+    select,
+    text,
+)
+from sqlalchemy.exc import IntegrityError, SQLAlchemyError
+
+from service.archive.chain import record_hash
+from service.archive.engines import ArchiveError as ArchiveError
+from service.archive.engines import make_engine, safe_url
+from service.archive.verification import verify_rows
+from service.records.hashing import canonical_json, load_canonical, sha256_hex
+
+SCHEMA_VERSION = 1
+
+# Key of the PostgreSQL transaction-level advisory lock that serialises appends to the chain
+# (an arbitrary constant of our own; any two writers of one archive must use the same one).
+CHAIN_LOCK_KEY = 0x62696F70  # "biop"
+
+metadata = MetaData()
+
+schema_version = Table(
+    "schema_version",
+    metadata,
+    Column("version", Integer, nullable=False),
+)
+
+records = Table(
+    "records",
+    metadata,
+    Column("seq", Integer, primary_key=True, autoincrement=True),
+    Column("id", String(64), nullable=False, unique=True),
+    Column("created_at", String(32), nullable=False),
+    Column("inputs_sha256", String(64), nullable=False, index=True),
+    Column("inputs", Text, nullable=False),
+    Column("result", Text, nullable=False),
+    Column("engine", Text, nullable=False),
+    Column("submitter", Text, nullable=False, server_default="unauthenticated"),
+    Column("record_sha256", String(64), nullable=False),
+    Column("previous_record_sha256", String(64), nullable=True),
+    sqlite_autoincrement=True,
+)
+
+# API keys: only the SHA-256 of each key is kept (service.archive.keys makes and checks the keys).
+api_keys = Table(
+    "api_keys",
+    metadata,
+    Column("label", String(200), primary_key=True),
+    Column("role", String(16), nullable=False),
+    Column("key_sha256", String(64), nullable=False, unique=True),
+    Column("created_at", String(32), nullable=False),
+    Column("revoked_at", String(32), nullable=True),
+)
+
+# One row per (submitter, Idempotency-Key): the fingerprint of the first request and its record.
+idempotency_keys = Table(
+    "idempotency_keys",
+    metadata,
+    Column("submitter", String(200), nullable=False),
+    Column("idempotency_key", String(200), nullable=False),
+    Column("request_sha256", String(64), nullable=False),
+    Column("record_id", String(64), nullable=False),
+    Column("created_at", String(32), nullable=False),
+    PrimaryKeyConstraint("submitter", "idempotency_key"),
+)
+
+# Tables added after schema version 1 shipped; open() adds them to an older archive file.
+_ADDED_TABLES = (api_keys, idempotency_keys)
+
+
+class IdempotencyConflict(Exception):
+    """An Idempotency-Key was used before, by the same submitter, for a different request."""
+
+    def __init__(self, record_id: str) -> None:
+        super().__init__(f"the key was first used for another request (record {record_id})")
+        self.record_id = record_id
+
+
+@dataclass(frozen=True)
+class ChainBreak:
+    seq: int
+    id: str
+    problem: str
+
+
+def utc_timestamp() -> str:
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+class Archive:
+    """Append-only store of records. Use `Archive.create(url)` or `Archive.open(url)`."""
+
+    def __init__(self, engine: Engine) -> None:
+        self._engine = engine
+
+    @classmethod
+    def create(cls, url: str, *, busy_timeout_ms: int = 10_000) -> Archive:
+        """Open the archive at `url`, creating its tables (and SQLite file) when missing."""
+        archive = cls(make_engine(url, busy_timeout_ms))
+        try:
+            with archive._engine.connect() as conn, _append_lock(conn):
+                metadata.create_all(conn)
+                versions = conn.execute(select(schema_version.c.version)).scalars().all()
+                if not versions:
+                    conn.execute(schema_version.insert().values(version=SCHEMA_VERSION))
+                    versions = [SCHEMA_VERSION]
+            _check_version(versions)
+        except SQLAlchemyError as exc:
+            archive.close()
+            raise ArchiveError(f"cannot create the archive at {safe_url(url)}: {exc}") from exc
+        except BaseException:
+            archive.close()
+            raise
+        return archive
+
+    @classmethod
+    def open(cls, url: str, *, busy_timeout_ms: int = 10_000) -> Archive:
+        """Open an existing archive; raise ArchiveError when `url` holds none."""
+        archive = cls(make_engine(url, busy_timeout_ms, create_directory=False))
+        try:
+            with archive._engine.connect() as conn:
+                tables = set(inspect(conn).get_table_names())
+                if not {"schema_version", "records"} <= tables:
+                    raise ArchiveError(f"no bioparity archive at {safe_url(url)}")
+                versions = conn.execute(select(schema_version.c.version)).scalars().all()
+            _check_version(versions)
+            if not {t.name for t in _ADDED_TABLES} <= tables:
+                with archive._engine.connect() as conn, _append_lock(conn):
+                    metadata.create_all(conn, tables=list(_ADDED_TABLES))
+        except SQLAlchemyError as exc:
+            archive.close()
+            raise ArchiveError(f"cannot open the archive at {safe_url(url)}: {exc}") from exc
+        except BaseException:
+            archive.close()
+            raise
+        return archive
+
+    def close(self) -> None:
+        self._engine.dispose()
+
+    @property
+    def engine(self) -> Engine:
+        """For the few modules that keep their own tables here (service.archive.keys)."""
+        return self._engine
+
+    def insert(
+        self, record: Mapping[str, Any], submitter: str = "unauthenticated"
+    ) -> dict[str, Any]:
+        """Append `record` ({"inputs_sha256", "inputs", "result"}) and return it as stored."""
+        texts = _record_texts(record)
+        with self._engine.connect() as conn, _append_lock(conn):
+            row = _append(conn, texts, submitter)
+        return _to_record(row)
+
+    def insert_once(
+        self,
+        record: Mapping[str, Any],
+        *,
+        submitter: str,
+        idempotency_key: str,
+        request_sha256: str,
+    ) -> tuple[dict[str, Any], bool]:
+        """Append `record` unless `submitter` already used `idempotency_key`: then return the
+        record of that first request and True (raise IdempotencyConflict if its fingerprint
+        differs). The check and the append share the append lock, so two concurrent requests
+        with one key archive one record; the primary key of idempotency_keys backs that up."""
+        texts = _record_texts(record)
+        for _attempt in range(2):
+            try:
+                with self._engine.connect() as conn, _append_lock(conn):
+                    earlier = _idempotent_row(conn, submitter, idempotency_key)
+                    if earlier is not None:
+                        return _replay(conn, earlier, request_sha256), True
+                    row = _append(conn, texts, submitter)
+                    conn.execute(idempotency_keys.insert().values(
+                        submitter=submitter, idempotency_key=idempotency_key,
+                        request_sha256=request_sha256, record_id=row["id"],
+                        created_at=row["created_at"],
+                    ))
+                return _to_record(row), False
+            except IntegrityError:
+                continue  # another writer got there first (no shared lock): read its row
+        raise ArchiveError("the idempotency key could not be recorded")
+
+    def find_idempotent(
+        self, *, submitter: str, idempotency_key: str, request_sha256: str
+    ) -> dict[str, Any] | None:
+        """The record first archived under this key, if any (IdempotencyConflict if the
+        request differs); a cheap read before any computing."""
+        with self._engine.connect() as conn, conn.begin():
+            earlier = _idempotent_row(conn, submitter, idempotency_key)
+            return None if earlier is None else _replay(conn, earlier, request_sha256)
+
+    def chain_rows(self) -> Iterator[dict[str, Any]]:
+        """Every stored row, raw column text, in chain order (for service.archive.verification)."""
+        with self._engine.connect() as conn, conn.begin():
+            result = conn.execute(
+                select(records.c.seq, records.c.engine, *_RECORD_COLUMNS).order_by(records.c.seq)
+            )
+            for row in result:
+                yield row._asdict()
+
+    def get(self, record_id: str) -> dict[str, Any] | None:
+        with self._engine.connect() as conn:
+            row = conn.execute(select(*_RECORD_COLUMNS).where(records.c.id == record_id)).first()
+        return None if row is None else _to_record(row._asdict())
+
+    def verify_chain(self) -> list[ChainBreak]:
+        """Every break of the chain (service.archive.verification); an empty list means intact."""
+        found = verify_rows(self.chain_rows()).breaks
+        return [ChainBreak(b.seq, b.id, b.reason.replace("_", " ")) for b in found]
+
+    def list(
+        self, inputs_sha256: str | None = None, limit: int = 50, offset: int = 0
+    ) -> tuple[list[dict[str, Any]], int]:
+        """Records in insertion order, optionally only those with the given inputs hash."""
+        page = select(*_RECORD_COLUMNS).order_by(records.c.seq).limit(limit).offset(offset)
+        count = select(func.count()).select_from(records)
+        if inputs_sha256 is not None:
+            page = page.where(records.c.inputs_sha256 == inputs_sha256)
+            count = count.where(records.c.inputs_sha256 == inputs_sha256)
+        # One read transaction, so `total` and the page describe the same state.
+        with self._engine.connect() as conn, conn.begin():
+            total = conn.execute(count).scalar_one()
+            rows = conn.execute(page).all()
+        return [_to_record(row._asdict()) for row in rows], int(total)
+
+
+_RECORD_COLUMNS = (
+    records.c.id,
+    records.c.created_at,
+    records.c.inputs_sha256,
+    records.c.inputs,
+    records.c.result,
+    records.c.submitter,
+    records.c.record_sha256,
+    records.c.previous_record_sha256,
+)
+
+
+def _to_record(row: Mapping[str, Any]) -> dict[str, Any]:
+    return {
+        "id": row["id"],
+        "created_at": row["created_at"],
+        "inputs_sha256": row["inputs_sha256"],
+        "inputs": load_canonical(row["inputs"]),
+        "result": load_canonical(row["result"]),
+        "submitter": row["submitter"],
+        "record_sha256": row["record_sha256"],
+        "previous_record_sha256": row["previous_record_sha256"],
+    }
+
+
+def _record_texts(record: Mapping[str, Any]) -> dict[str, Any]:
+    inputs_text = canonical_json(record["inputs"])
+    if sha256_hex(inputs_text) != record["inputs_sha256"]:
+        raise ValueError("inputs_sha256 does not match the canonical form of inputs")
+    result_text = canonical_json(record["result"])
+    # Re-read from the canonical text so the stored and the returned record are one object.
+    result = load_canonical(result_text)
+    return {
+        "inputs_sha256": record["inputs_sha256"],
+        "inputs": inputs_text.decode("utf-8"),
+        "result_text": result_text.decode("utf-8"),
+        "result": result,
+        "engine": canonical_json(result.get("engine", {})).decode("utf-8"),
+    }
+
+
+def _append(conn: Connection, texts: Mapping[str, Any], submitter: str) -> dict[str, Any]:
+    """Insert one row at the head of the chain; the caller holds the append lock."""
+    previous = conn.execute(
+        select(records.c.record_sha256).order_by(records.c.seq.desc()).limit(1)
+    ).scalar_one_or_none()
+    created_at = utc_timestamp()
+    row = {
+        "id": uuid.uuid4().hex,
+        "created_at": created_at,
+        "inputs_sha256": texts["inputs_sha256"],
+        "inputs": texts["inputs"],
+        "result": texts["result_text"],
+        "engine": texts["engine"],
+        "submitter": submitter,
+        "record_sha256": record_hash(
+            inputs_sha256=texts["inputs_sha256"],
+            result=texts["result"],
+            created_at=created_at,
+            submitter=submitter,
+            previous_record_sha256=previous,
+        ),
+        "previous_record_sha256": previous,
+    }
+    conn.execute(records.insert().values(**row))
+    return row
+
+
+def _idempotent_row(conn: Connection, submitter: str, key: str) -> Mapping[str, Any] | None:
+    row = conn.execute(
+        select(idempotency_keys.c.request_sha256, idempotency_keys.c.record_id).where(
+            idempotency_keys.c.submitter == submitter,
+            idempotency_keys.c.idempotency_key == key,
+        )
+    ).first()
+    return None if row is None else row._asdict()
+
+
+def _replay(conn: Connection, earlier: Mapping[str, Any], request_sha256: str) -> dict[str, Any]:
+    if earlier["request_sha256"] != request_sha256:
+        raise IdempotencyConflict(earlier["record_id"])
+    row = conn.execute(
+        select(*_RECORD_COLUMNS).where(records.c.id == earlier["record_id"])
+    ).first()
+    if row is None:
+        raise ArchiveError(f"record {earlier['record_id']} of an idempotency key is missing")
+    return _to_record(row._asdict())
+
+
+@contextmanager
+def _append_lock(conn: Connection) -> Iterator[None]:
+    """A write transaction that holds the archive-wide append lock until commit.
+
+    SQLite: BEGIN IMMEDIATE takes the write lock before the previous hash is read.
+    PostgreSQL: a transaction-level advisory lock does the same job across processes.
+    """
+    if conn.dialect.name == "sqlite":
+        conn.execution_options(sqlite_begin="BEGIN IMMEDIATE")
+    with conn.begin():
+        if conn.dialect.name == "postgresql":
+            conn.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": CHAIN_LOCK_KEY})
+        yield
+
+
+def _check_version(versions: list[int] | Any) -> None:
+    found = list(versions)
+    if found != [SCHEMA_VERSION]:
+        raise ArchiveError(
+            f"archive schema version {found} is not supported (this build reads {SCHEMA_VERSION})"
+        )

@@ -1,0 +1,1 @@
+"""The command line: analyze, serve, keys and archive (the bioparity command)."""

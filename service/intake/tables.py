@@ -1,0 +1,283 @@
+"""Request validation and normalization, and the per-metric matrices handed to the stats engine.
+
+Every problem in a request is collected before anything is raised, so a caller fixes a table in one
+round trip. The normalized inputs are plain JSON values with every default filled in: they are what
+gets hashed, so two requests that mean the same thing must normalize to the same dict.
+"""
+
+from __future__ import annotations
+
+import secrets
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.intake.checks import check_consistency, check_profiles, check_records
+from service.intake.csvinput import parse_csv_body
+from service.intake.models import (
+    Design,
+    Profile,
+    Record,
+    Settings,
+    Study,
+    describe_json_type,
+    validate_part,
+)
+from service.intake.problems import InvalidRequest, Loc, Problem, format_loc, parse_json_body
+
+__all__ = [
+    "ExcludedSubject",
+    "InvalidRequest",
+    "Loc",
+    "MetricTable",
+    "Problem",
+    "build_tables",
+    "format_loc",
+    "normalize_request",
+    "parse_csv_body",
+    "parse_json_body",
+]
+
+_TOP_LEVEL = ("study", "design", "records", "profiles", "settings")
+# Metric names the profile analysis (service/profiles.py) gives its derived values; a record using
+# one of them beside profiles would be merged with the derived values of the same name.
+DERIVED_METRICS = ("auc_0_t", "auc_0_inf", "cmax", "tmax")
+
+
+@dataclass(frozen=True)
+class ExcludedSubject:
+    subject: str
+    reason: str
+
+
+@dataclass(frozen=True)
+class MetricTable:
+    metric: str
+    treatments: tuple[str, ...]
+    subjects: tuple[str, ...]
+    values: NDArray[np.float64]
+    periods: NDArray[np.int64]
+    sequences: tuple[str, ...]
+    excluded: tuple[ExcludedSubject, ...]
+
+
+def _validate_list(
+    raw: dict[Any, Any], key: str, model: type[Record] | type[Profile], problems: list[Problem]
+) -> tuple[list[tuple[int, Any]], int]:
+    """Validate every item of raw[key]; return the valid (index, model) pairs and the item count."""
+    items = raw.get(key, [])
+    if not isinstance(items, list):
+        problems.append(Problem((key,), f"must be a list, got {describe_json_type(items)}"))
+        return [], 0
+    valid: list[tuple[int, Any]] = []
+    for index, item in enumerate(items):
+        parsed, found = validate_part(model, item, (key, index))
+        problems.extend(found)
+        if parsed is not None:
+            valid.append((index, parsed))
+    return valid, len(items)
+
+
+def normalize_request(raw: Any) -> dict[str, Any]:
+    if not isinstance(raw, dict):
+        raise InvalidRequest([Problem(("body",), "the request must be a JSON object")])
+    problems: list[Problem] = []
+    for key in raw:
+        if key not in _TOP_LEVEL:
+            problems.append(Problem((str(key),), "unknown field"))
+
+    study, found = validate_part(Study, raw.get("study", {}), ("study",))
+    problems.extend(found)
+    design: Design | None = None
+    if "design" in raw:
+        design, found = validate_part(Design, raw["design"], ("design",))
+        problems.extend(found)
+    else:
+        problems.append(Problem(("design",), "field required"))
+    settings, found = validate_part(Settings, raw.get("settings", {}), ("settings",))
+    problems.extend(found)
+
+    records, n_records = _validate_list(raw, "records", Record, problems)
+    profiles, n_profiles = _validate_list(raw, "profiles", Profile, problems)
+    if n_records == 0 and n_profiles == 0 and "records" not in {p.loc[0] for p in problems}:
+        problems.append(Problem(("records",), "at least one record is required"))
+    items_valid = len(records) == n_records and len(profiles) == n_profiles
+
+    distinct = False
+    allowed: tuple[str, ...] = ()
+    if design is not None:
+        allowed = tuple(dict.fromkeys((design.test, design.reference) + (
+            (design.baseline,) if design.baseline is not None else ()
+        )))
+        if design.reference == design.test:
+            problems.append(Problem(("design", "reference"),
+                                    f"must differ from test; both are {design.test!r}"))
+        if design.baseline is not None and design.baseline in (design.test, design.reference):
+            which = "test" if design.baseline == design.test else "reference"
+            problems.append(Problem(("design", "baseline"),
+                                    f"must differ from test and reference; equals {which} "
+                                    f"{design.baseline!r}"))
+        distinct = len(allowed) == 2 + (design.baseline is not None)
+        if distinct:  # with clashing arm labels every row would be flagged: one fault, one problem
+            problems.extend(_check_treatments(records, "records", allowed))
+            problems.extend(_check_treatments(profiles, "profiles", allowed))
+    if n_profiles:
+        problems.extend(
+            Problem(("records", index, "metric"),
+                    f"metric name {r.metric!r} is reserved for the metrics derived from profiles "
+                    f"({', '.join(DERIVED_METRICS)}); rename it")
+            for index, r in records if r.metric in DERIVED_METRICS
+        )
+    problems.extend(check_records(records))
+    problems.extend(check_profiles(profiles))
+    if design is not None and distinct:
+        # rows with an unknown arm are already reported; their periods would only echo that
+        known = set(allowed)
+        problems.extend(check_consistency([(i, r) for i, r in records if r.treatment in known],
+                                          [(i, p) for i, p in profiles if p.treatment in known]))
+    else:
+        problems.extend(check_consistency(records, profiles))
+
+    normalized_records = sorted(
+        (
+            {"subject": r.subject, "period": r.period, "sequence": r.sequence,
+             "treatment": r.treatment, "metric": r.metric, "value": float(r.value)}
+            for _, r in records
+        ),
+        key=lambda r: (r["metric"], r["subject"], r["period"], r["treatment"]),
+    )
+    normalized_profiles = sorted(
+        (
+            {"subject": p.subject, "period": p.period, "treatment": p.treatment,
+             "sequence": p.sequence, "time": float(p.time),
+             "concentration": None if p.concentration is None else float(p.concentration),
+             "below_lloq": p.below_lloq}
+            for _, p in profiles
+        ),
+        key=lambda p: (p["subject"], p["period"], p["treatment"], p["time"]),
+    )
+
+    # Whole-table checks need every row and a valid design, or they report ghosts of other faults;
+    # faults in study or settings do not touch the table, so they do not hold these checks back.
+    table_faults = any(p.loc[0] in ("records", "profiles", "design") for p in problems)
+    if design is not None and items_valid and not table_faults:
+        incomplete = _incomplete_rule(raw, settings)
+        inputs_so_far = {"design": design.model_dump(), "records": normalized_records,
+                         "profiles": normalized_profiles,
+                         "settings": {"incomplete_subjects": incomplete}}
+        try:
+            build_tables(inputs_so_far)
+        except InvalidRequest as exc:
+            problems.extend(exc.problems)
+
+    if problems or study is None or design is None or settings is None:
+        raise InvalidRequest(problems)
+    settings_out = settings.model_dump()
+    if settings_out["seed"] is None:
+        # The seed that was used is part of the inputs, so the analysis can be re-run exactly;
+        # 53 bits keep it inside the integers RFC 8785 can hash.
+        settings_out["seed"] = secrets.randbits(53)
+    return {
+        "study": study.model_dump(),
+        "design": design.model_dump(),
+        "records": normalized_records,
+        "profiles": normalized_profiles,
+        "settings": settings_out,
+    }
+
+
+def _incomplete_rule(raw: dict[Any, Any], settings: Settings | None) -> str:
+    if settings is not None:
+        return settings.incomplete_subjects
+    given = raw.get("settings")
+    rule = given.get("incomplete_subjects") if isinstance(given, dict) else None
+    return rule if rule in ("exclude", "reject") else "exclude"
+
+
+def _check_treatments(
+    items: list[tuple[int, Any]], key: str, allowed: tuple[str, ...]
+) -> list[Problem]:
+    shown = ", ".join(repr(label) for label in allowed)
+    return [
+        Problem((key, index, "treatment"),
+                f"treatment {item.treatment!r} is not in the design; allowed: {shown}")
+        for index, item in items
+        if item.treatment not in allowed
+    ]
+
+
+def _subject_orders(rows: Iterable[dict[str, Any]]) -> tuple[dict[str, str], dict[str, str]]:
+    """Per subject: the given sequence label, and the treatment order by period ("R-T-B")."""
+    labels: dict[str, str] = {}
+    by_period: dict[str, dict[int, str]] = {}
+    for row in rows:
+        subject = row["subject"]
+        if row.get("sequence") is not None:
+            labels.setdefault(subject, row["sequence"])
+        by_period.setdefault(subject, {}).setdefault(row["period"], row["treatment"])
+    orders = {s: "-".join(t for _, t in sorted(plan.items())) for s, plan in by_period.items()}
+    return labels, orders
+
+
+def _missing_reason(missing: list[str]) -> str:
+    if len(missing) == 1:
+        return f"no value for treatment {missing[0]!r}"
+    return "no values for treatments " + ", ".join(repr(t) for t in missing)
+
+
+def build_tables(
+    inputs: dict[str, Any], extra_records: Sequence[dict[str, Any]] = ()
+) -> list[MetricTable]:
+    design = inputs["design"]
+    treatments: tuple[str, ...] = (design["test"], design["reference"]) + (
+        (design["baseline"],) if design.get("baseline") is not None else ()
+    )
+    reject = inputs.get("settings", {}).get("incomplete_subjects", "exclude") == "reject"
+    records = list(inputs.get("records", []))
+    extras = list(extra_records)
+    labels, orders = _subject_orders([*records, *inputs.get("profiles", []), *extras])
+    input_metrics = {r["metric"] for r in records}
+
+    by_metric: dict[str, dict[str, dict[str, tuple[float, int]]]] = {}
+    for row in [*records, *extras]:
+        cells = by_metric.setdefault(row["metric"], {}).setdefault(row["subject"], {})
+        cells.setdefault(row["treatment"], (float(row["value"]), int(row["period"])))
+
+    problems: list[Problem] = []
+    tables: list[MetricTable] = []
+    for metric in sorted(by_metric):
+        where: Loc = ("records",) if metric in input_metrics else ("profiles",)
+        analysed: list[str] = []
+        excluded: list[ExcludedSubject] = []
+        for subject in sorted(by_metric[metric]):
+            cells = by_metric[metric][subject]
+            missing = [t for t in treatments if t not in cells]
+            if not missing:
+                analysed.append(subject)
+                continue
+            reason = _missing_reason(missing)
+            excluded.append(ExcludedSubject(subject, reason))
+            if reject:
+                problems.append(Problem(where, f"metric {metric!r}: subject {subject!r} has "
+                                               f"{reason}, and incomplete subjects are rejected "
+                                               f"(settings.incomplete_subjects is 'reject')"))
+        if len(analysed) < 3:
+            count = f"{len(analysed)} analysable subject" + ("" if len(analysed) == 1 else "s")
+            problems.append(Problem(where, f"metric {metric!r}: only {count}; "
+                                           f"at least 3 are needed"))
+        cells_of = by_metric[metric]
+        values = np.array([[cells_of[s][t][0] for t in treatments] for s in analysed],
+                          dtype=np.float64).reshape(len(analysed), len(treatments))
+        periods = np.array([[cells_of[s][t][1] for t in treatments] for s in analysed],
+                           dtype=np.int64).reshape(len(analysed), len(treatments))
+        tables.append(MetricTable(
+            metric=metric, treatments=treatments, subjects=tuple(analysed), values=values,
+            periods=periods, sequences=tuple(labels.get(s, orders[s]) for s in analysed),
+            excluded=tuple(excluded),
+        ))
+    if problems:
+        raise InvalidRequest(problems)
+    return tables

@@ -1,0 +1,1 @@
+"""From normalized inputs to the record: result assembly, profiles, canonical hashing, reproduction."""
