@@ -18,5 +18,7 @@ echo "JSON request:            $(post application/json "$HERE/vitamin_d3_softgel
 echo "CSV, comma:              $(post text/csv "$HERE/vitamin_d3_softgel.csv" "$Q")"
 echo "CSV, semicolon/decimal,: $(post text/csv "$HERE/vitamin_d3_softgel_semicolon.csv" "$Q")"
 echo "BX-41 profiles (JSON):   $(post application/json "$HERE/bx41_profiles.json")"
+echo "QM-7 replicate, widened: $(post application/json "$HERE/qm7_replicate_widened.json")"
+echo "QM-7 replicate, scaled:  $(post application/json "$HERE/qm7_replicate_reference_scaled.json")"
 echo
 echo "Open a report:  curl -s ${AUTH[*]:-} $BASE/v1/analyses/ID/report -o report.html"

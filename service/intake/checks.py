@@ -12,18 +12,14 @@ Items = list[tuple[int, Any]]
 def check_records(records: Items) -> list[Problem]:
     problems: list[Problem] = []
     by_period: dict[tuple[str, int, str], int] = {}
-    by_treatment: dict[tuple[str, str, str], int] = {}
     for index, r in records:
         earlier = by_period.setdefault((r.subject, r.period, r.metric), index)
         if earlier != index:
             problems.append(Problem(("records", index, "period"),
                                     f"subject {r.subject!r} already has a {r.metric!r} value in "
                                     f"period {r.period} (records[{earlier}])"))
-        earlier = by_treatment.setdefault((r.subject, r.treatment, r.metric), index)
-        if earlier != index:
-            problems.append(Problem(("records", index, "treatment"),
-                                    f"subject {r.subject!r} already has a {r.metric!r} value under "
-                                    f"treatment {r.treatment!r} (records[{earlier}])"))
+    # The same treatment in two periods is a replicate design, not a duplicate: whether the
+    # table fits a supported design is decided once every row is read (service.records).
     return problems
 
 
@@ -58,14 +54,14 @@ def _where(key: str, index: int) -> str:
 
 
 def check_consistency(records: Items, profiles: Items) -> list[Problem]:
-    """One subject: one period -> treatment mapping and one sequence label.
+    """One subject: one period -> treatment mapping and one sequence label (a treatment may
+    recur in another period: replicate designs).
 
     Subjects sharing a label: one treatment order.
     """
     problems: list[Problem] = []
     # (subject, period) -> (treatment, source, where); source is the metric, or "" for profiles
     treatment_of: dict[tuple[str, int], tuple[str, str, str]] = {}
-    period_of: dict[tuple[str, str], tuple[int, str, str]] = {}
     label_of: dict[str, tuple[str, str]] = {}
     label_loc: dict[str, tuple[str, int]] = {}
     rows = [("records", i, r, r.metric) for i, r in records]
@@ -79,12 +75,6 @@ def check_consistency(records: Items, profiles: Items) -> list[Problem]:
                                     f"subject {row.subject!r} received {first_t[0]!r} in period "
                                     f"{row.period} according to {first_t[2]}, but "
                                     f"{row.treatment!r} here"))
-        first_p = period_of.setdefault((row.subject, row.treatment), (row.period, source, here))
-        if first_p[0] != row.period and not (key == "records" and first_p[1] == source):
-            problems.append(Problem((key, index, "period"),
-                                    f"subject {row.subject!r} received {row.treatment!r} in period "
-                                    f"{first_p[0]} according to {first_p[2]}, but in period "
-                                    f"{row.period} here"))
         if row.sequence is not None:
             first_l = label_of.setdefault(row.subject, (row.sequence, here))
             label_loc.setdefault(row.subject, (key, index))

@@ -24,11 +24,13 @@ _INTEGER = re.compile(r"[+-]?\d+")
 _TEXT_QUERY = {"title": "study", "analyte": "study", "unit": "study",
                "test": "design", "reference": "design", "baseline": "design",
                "interval": "settings", "incomplete_subjects": "settings"}
+# scaling=widened_limits&scaling_metrics=cmax,auc_0_t → settings.scaling {approach, metrics}
+_SCALING_QUERY = ("scaling", "scaling_metrics")
 _INT_QUERY = ("replicates", "seed")
 _FLOAT_QUERY = {"confidence_level": ("confidence_level",), "limit_lower": ("limits", "lower"),
                 "limit_upper": ("limits", "upper")}
 _BOOL_QUERY = ("stratify_by_sequence",)
-QUERY_PARAMETERS = (*_TEXT_QUERY, *_INT_QUERY, *_FLOAT_QUERY, *_BOOL_QUERY)
+QUERY_PARAMETERS = (*_TEXT_QUERY, *_INT_QUERY, *_FLOAT_QUERY, *_BOOL_QUERY, *_SCALING_QUERY)
 
 # The flat settings that travel beside a CSV table (HTTP query, upload form, command-line options):
 # name → (JSON-schema type, what it means).
@@ -47,6 +49,8 @@ SETTING_FIELDS: dict[str, tuple[str, str]] = {
     "limit_upper": ("number", "upper acceptance limit of the ratio parameter"),
     "stratify_by_sequence": ("boolean", "resample within sequence groups"),
     "incomplete_subjects": ("string", "exclude or reject"),
+    "scaling": ("string", "none, widened_limits or reference_scaled (fixed by the protocol)"),
+    "scaling_metrics": ("string", "comma-separated metrics the scaling applies to"),
 }
 
 
@@ -89,6 +93,11 @@ def _parse_query(query: Mapping[str, str], raw: dict[str, Any], problems: list[P
                 for part in path[:-1]:
                     target = target.setdefault(part, {})
                 target[path[-1]] = number
+        elif name == "scaling":
+            raw.setdefault("settings", {}).setdefault("scaling", {})["approach"] = text
+        elif name == "scaling_metrics":
+            metrics = [part.strip() for part in text.split(",") if part.strip()]
+            raw.setdefault("settings", {}).setdefault("scaling", {})["metrics"] = metrics
         elif name in _BOOL_QUERY:
             flag = {"true": True, "1": True, "false": False, "0": False}.get(text.strip().lower())
             if flag is None:

@@ -117,6 +117,34 @@ class ProfileSettings(_Model):
     below_lloq_after_first: Literal["exclude", "zero"] = "exclude"
 
 
+class Scaling(_Model):
+    """Limits scaled to the reference's variability, for the metrics the protocol names
+    (EMA 2010 §4.1.10 widened limits; FDA 2011 progesterone draft guidance, reference-scaled)."""
+
+    approach: Literal["none", "widened_limits", "reference_scaled"] = "none"
+    metrics: list[Annotated[str, Field(min_length=1, max_length=200)]] = []
+
+    @model_validator(mode="after")
+    def _named(self) -> Scaling:
+        if self.approach != "none" and not self.metrics:
+            raise ValueError("name the metrics the scaling applies to (settings.scaling.metrics); "
+                             "the protocol fixes them in advance")
+        if len(set(self.metrics)) != len(self.metrics):
+            raise ValueError("metrics: each metric may be named once")
+        return self
+
+
+class ShiftLimits(_Model):
+    lower: Finite
+    upper: Finite
+
+    @model_validator(mode="after")
+    def _ordered(self) -> ShiftLimits:
+        if self.lower >= self.upper:
+            raise ValueError(f"lower ({self.lower}) must be less than upper ({self.upper})")
+        return self
+
+
 class Settings(_Model):
     replicates: Annotated[int, Field(ge=100, le=1_000_000)] = 10_000
     seed: Annotated[int, Field(ge=0, lt=JSON_SAFE_INTEGER_LIMIT)] | None = None
@@ -127,6 +155,10 @@ class Settings(_Model):
     incomplete_subjects: Literal["exclude", "reject"] = "exclude"
     average_bioequivalence: AverageBioequivalence = AverageBioequivalence()
     profiles: ProfileSettings = ProfileSettings()
+    # Added after the first release: absent unless given, so the normalized inputs (and the hash)
+    # of a request that does not use them stay as they were.
+    scaling: Scaling | None = None
+    tmax_limits: ShiftLimits | None = None
 
 
 def describe_json_type(got: Any) -> str:

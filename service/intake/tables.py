@@ -33,6 +33,7 @@ __all__ = [
     "InvalidRequest",
     "Loc",
     "MetricTable",
+    "Observation",
     "Problem",
     "build_tables",
     "format_loc",
@@ -54,7 +55,22 @@ class ExcludedSubject:
 
 
 @dataclass(frozen=True)
+class Observation:
+    subject: str
+    sequence: str
+    period: int
+    treatment: str
+    value: float
+
+
+@dataclass(frozen=True)
 class MetricTable:
+    """One metric's table. `values[i, j]` is subject i's mean over its observations of treatment j
+    (the observation itself when there is one), `periods[i, j]` the first period of it; only
+    subjects with every treatment are rows. `observations` holds every observation of the design's
+    treatments, complete subjects or not, in (subject, period) order; `parallel` is true when each
+    subject has exactly one observation (then there are no rows)."""
+
     metric: str
     treatments: tuple[str, ...]
     subjects: tuple[str, ...]
@@ -62,6 +78,18 @@ class MetricTable:
     periods: NDArray[np.int64]
     sequences: tuple[str, ...]
     excluded: tuple[ExcludedSubject, ...]
+    observations: tuple[Observation, ...] = ()
+    parallel: bool = False
+
+    @property
+    def replicated(self) -> bool:
+        """Some subject has a treatment more than once (a replicate design)."""
+        seen: set[tuple[str, str]] = set()
+        for o in self.observations:
+            if (o.subject, o.treatment) in seen:
+                return True
+            seen.add((o.subject, o.treatment))
+        return False
 
 
 def _validate_list(
@@ -176,6 +204,9 @@ def normalize_request(raw: Any) -> dict[str, Any]:
     if problems or study is None or design is None or settings is None:
         raise InvalidRequest(problems)
     settings_out = settings.model_dump()
+    for added in ("scaling", "tmax_limits"):
+        if settings_out[added] is None:
+            del settings_out[added]
     if settings_out["seed"] is None:
         # The seed that was used is part of the inputs, so the analysis can be re-run exactly;
         # 53 bits keep it inside the integers RFC 8785 can hash.
@@ -228,6 +259,37 @@ def _missing_reason(missing: list[str]) -> str:
     return "no values for treatments " + ", ".join(repr(t) for t in missing)
 
 
+def _mean(seen: list[tuple[int, float]]) -> float:
+    # One observation stays the very same float (a crossover's numbers never change).
+    if len(seen) == 1:
+        return seen[0][1]
+    return float(np.mean([value for _, value in seen]))
+
+
+def _is_parallel(cells_of: dict[str, dict[str, list[tuple[int, float]]]]) -> bool:
+    """Each subject has exactly one observation: parallel groups (one treatment, one period)."""
+    return len(cells_of) > 0 and all(
+        len(cells) == 1 and len(next(iter(cells.values()))) == 1 for cells in cells_of.values()
+    )
+
+
+def _parallel_problems(
+    metric: str, where: Loc, cells_of: dict[str, dict[str, list[tuple[int, float]]]],
+    design: dict[str, Any],
+) -> list[Problem]:
+    group_sizes = {design["test"]: 0, design["reference"]: 0}
+    for cells in cells_of.values():
+        (treatment,) = cells
+        if treatment in group_sizes:
+            group_sizes[treatment] += 1
+    return [
+        Problem(where, f"metric {metric!r}: parallel groups (each subject one treatment, one "
+                       f"period) need at least 2 subjects per group; treatment {label!r} has "
+                       f"{size}")
+        for label, size in group_sizes.items() if size < 2
+    ]
+
+
 def build_tables(
     inputs: dict[str, Any], extra_records: Sequence[dict[str, Any]] = ()
 ) -> list[MetricTable]:
@@ -241,19 +303,39 @@ def build_tables(
     labels, orders = _subject_orders([*records, *inputs.get("profiles", []), *extras])
     input_metrics = {r["metric"] for r in records}
 
-    by_metric: dict[str, dict[str, dict[str, tuple[float, int]]]] = {}
+    # metric -> subject -> treatment -> [(period, value)] in period order
+    by_metric: dict[str, dict[str, dict[str, list[tuple[int, float]]]]] = {}
     for row in [*records, *extras]:
         cells = by_metric.setdefault(row["metric"], {}).setdefault(row["subject"], {})
-        cells.setdefault(row["treatment"], (float(row["value"]), int(row["period"])))
+        cells.setdefault(row["treatment"], []).append((int(row["period"]), float(row["value"])))
 
     problems: list[Problem] = []
     tables: list[MetricTable] = []
     for metric in sorted(by_metric):
         where: Loc = ("records",) if metric in input_metrics else ("profiles",)
+        cells_of = by_metric[metric]
+        observations = tuple(
+            Observation(subject, labels.get(subject, orders[subject]), period, treatment, value)
+            for subject in sorted(cells_of)
+            for period, treatment, value in sorted(
+                (period, treatment, value)
+                for treatment, seen in cells_of[subject].items() if treatment in treatments
+                for period, value in seen
+            )
+        )
+        if _is_parallel(cells_of):
+            problems.extend(_parallel_problems(metric, where, cells_of, design))
+            tables.append(MetricTable(
+                metric=metric, treatments=treatments, subjects=(),
+                values=np.empty((0, len(treatments))), periods=np.empty((0, len(treatments)),
+                                                                         dtype=np.int64),
+                sequences=(), excluded=(), observations=observations, parallel=True,
+            ))
+            continue
         analysed: list[str] = []
         excluded: list[ExcludedSubject] = []
-        for subject in sorted(by_metric[metric]):
-            cells = by_metric[metric][subject]
+        for subject in sorted(cells_of):
+            cells = cells_of[subject]
             missing = [t for t in treatments if t not in cells]
             if not missing:
                 analysed.append(subject)
@@ -268,15 +350,14 @@ def build_tables(
             count = f"{len(analysed)} analysable subject" + ("" if len(analysed) == 1 else "s")
             problems.append(Problem(where, f"metric {metric!r}: only {count}; "
                                            f"at least 3 are needed"))
-        cells_of = by_metric[metric]
-        values = np.array([[cells_of[s][t][0] for t in treatments] for s in analysed],
+        values = np.array([[_mean(cells_of[s][t]) for t in treatments] for s in analysed],
                           dtype=np.float64).reshape(len(analysed), len(treatments))
-        periods = np.array([[cells_of[s][t][1] for t in treatments] for s in analysed],
+        periods = np.array([[cells_of[s][t][0][0] for t in treatments] for s in analysed],
                            dtype=np.int64).reshape(len(analysed), len(treatments))
         tables.append(MetricTable(
             metric=metric, treatments=treatments, subjects=tuple(analysed), values=values,
             periods=periods, sequences=tuple(labels.get(s, orders[s]) for s in analysed),
-            excluded=tuple(excluded),
+            excluded=tuple(excluded), observations=observations,
         ))
     if problems:
         raise InvalidRequest(problems)

@@ -12,13 +12,12 @@ import scipy
 
 from service import __version__
 from service.intake.tables import MetricTable, build_tables
+from service.records.bioequivalence import abe_block, design_of
 from service.records.hashing import inputs_sha256
 from service.records.profiles import derive_profile_metrics
-from service.stats.equivalence import (
-    average_bioequivalence,
-    average_bioequivalence_to_json,
-    tmax_summary,
-)
+from service.records.tmax import tmax_comparison
+from service.stats.designs import DesignRecognition
+from service.stats.equivalence import tmax_summary
 from service.stats.ratio import analyse_ratio, ratio_analysis_to_json
 
 ROLES = ("test", "reference", "baseline")
@@ -55,7 +54,11 @@ def compute_result(inputs: dict[str, Any], *, deadline: float | None = None) -> 
         metrics.append(_analyse_metric(table, inputs, warnings, deadline))
     if derived.tmax:
         summary = tmax_summary(derived.tmax)
-        metrics.append({"metric": "tmax", "analysis": "summary_only", "summary": summary})
+        entry = {"metric": "tmax", "analysis": "summary_only", "summary": summary}
+        comparison = tmax_comparison(derived.profiles, inputs, warnings)
+        if comparison is not None:
+            entry["nonparametric"] = comparison
+        metrics.append(entry)
     for flag in derived.warnings:
         warnings.append(flag)
 
@@ -88,6 +91,9 @@ def _analyse_metric(
 ) -> dict[str, Any]:
     settings = inputs["settings"]
     design = inputs["design"]
+    recognition = design_of(table, design)
+    if table.parallel:
+        return _parallel_metric(table, recognition, inputs, warnings, deadline)
     strata = _strata(table.sequences) if settings["stratify_by_sequence"] else None
     ratio = analyse_ratio(
         table.values,
@@ -127,61 +133,40 @@ def _analyse_metric(
         "per_subject": _per_subject(table, ratio_json),
         "ratio_of_mean_differences": ratio_json,
     }
-    entry["average_bioequivalence"] = _average_bioequivalence(
-        table, design, settings["average_bioequivalence"], warnings
-    )
+    entry["average_bioequivalence"] = abe_block(
+        table, recognition, design, settings, warnings, deadline)
     return entry
 
 
-def _average_bioequivalence(
-    table: MetricTable,
-    design: Mapping[str, Any],
-    abe_settings: Mapping[str, Any],
-    warnings: list[dict[str, Any]],
-) -> dict[str, Any] | None:
-    if not np.all(table.values > 0):
-        warnings.append(
-            {
-                "code": "nonpositive_values",
-                "metric": table.metric,
-                "message": "average bioequivalence needs positive values (it works on their "
-                "logarithms); some values are zero or negative, so it was not computed",
-            }
-        )
-        return None
-    columns = 2 if abe_settings["treatments_in_model"] == "compared" else table.values.shape[1]
-    n = len(table.subjects)
-    subjects = [s for s in table.subjects for _ in range(columns)]
-    sequences = [q for q in table.sequences for _ in range(columns)]
-    periods = [int(p) for p in table.periods[:, :columns].reshape(-1)]
-    treatments = [t for _ in range(n) for t in table.treatments[:columns]]
-    values = table.values[:, :columns].reshape(-1)
-    try:
-        abe = average_bioequivalence(
-            subjects=subjects,
-            sequences=sequences,
-            periods=periods,
-            treatments=treatments,
-            values=values,
-            test=design["test"],
-            reference=design["reference"],
-            confidence_level=abe_settings["confidence_level"],
-            limits_percent=(abe_settings["limits"]["lower"], abe_settings["limits"]["upper"]),
-        )
-    except ValueError as exc:
-        # e.g. treatment confounded with period (every subject in one sequence of a 2×2)
-        warnings.append(
-            {
-                "code": "average_bioequivalence_not_estimable",
-                "metric": table.metric,
-                "message": f"average bioequivalence could not be estimated: {exc}",
-            }
-        )
-        return None
-    abe_json = average_bioequivalence_to_json(abe)
-    for diagnostic in abe_json.get("warnings", []):
-        warnings.append({"metric": table.metric, **diagnostic})
-    return abe_json
+def _parallel_metric(
+    table: MetricTable, recognition: DesignRecognition, inputs: dict[str, Any],
+    warnings: list[dict[str, Any]], deadline: float | None,
+) -> dict[str, Any]:
+    """Parallel groups: no subject has both products, so there is no within-subject θ; the
+    log-scale comparison of the groups is the analysis."""
+    design = inputs["design"]
+    warnings.append({"code": "ratio_not_paired", "metric": table.metric,
+                     "message": "parallel groups: each subject received one treatment, so the "
+                     "ratio of mean differences (a within-subject statistic) is not computed"})
+    groups: dict[str, list[float]] = {}
+    for o in table.observations:
+        groups.setdefault(o.treatment, []).append(o.value)
+    return {
+        "metric": table.metric,
+        "analysis": "parallel",
+        "treatments": {
+            role: label for role, label in zip(ROLES, table.treatments, strict=False)
+        },
+        "subjects": {"analysed": sorted({o.subject for o in table.observations}), "excluded": []},
+        "treatment_summary": [
+            _summary_row(label, role, np.array(groups.get(label, []), dtype=np.float64))
+            for role, label in zip(ROLES, table.treatments, strict=False)
+        ],
+        "per_subject": [],
+        "ratio_of_mean_differences": None,
+        "average_bioequivalence": abe_block(
+            table, recognition, design, inputs["settings"], warnings, deadline),
+    }
 
 
 def _strata(sequences: Sequence[str]) -> np.ndarray[Any, np.dtype[np.int64]]:
@@ -191,22 +176,23 @@ def _strata(sequences: Sequence[str]) -> np.ndarray[Any, np.dtype[np.int64]]:
 
 
 def _treatment_summary(table: MetricTable) -> list[dict[str, Any]]:
-    summary = []
-    for j, (role, label) in enumerate(zip(ROLES, table.treatments, strict=False)):
-        column = table.values[:, j]
-        n = int(column.size)
-        summary.append(
-            {
-                "treatment": label,
-                "role": role,
-                "n": n,
-                "mean": float(column.mean()),
-                "sd": float(column.std(ddof=1)) if n > 1 else None,
-                "min": float(column.min()),
-                "max": float(column.max()),
-            }
-        )
-    return summary
+    return [
+        _summary_row(label, role, table.values[:, j])
+        for j, (role, label) in enumerate(zip(ROLES, table.treatments, strict=False))
+    ]
+
+
+def _summary_row(label: str, role: str, column: np.ndarray[Any, np.dtype[np.float64]]) -> dict[str, Any]:
+    n = int(column.size)
+    return {
+        "treatment": label,
+        "role": role,
+        "n": n,
+        "mean": float(column.mean()) if n else None,
+        "sd": float(column.std(ddof=1)) if n > 1 else None,
+        "min": float(column.min()) if n else None,
+        "max": float(column.max()) if n else None,
+    }
 
 
 def _per_subject(table: MetricTable, ratio_json: Mapping[str, Any]) -> list[dict[str, Any]]:

@@ -3,7 +3,11 @@
 Compared: every value under `result` except `result.engine`, exactly (after the same RFC 8785
 round trip the archive applies, so the numbers are compared as stored), plus the inputs hash.
 The engine versions are listed apart: a newer engine that gives the same numbers reproduces the
-record; its version change is reported in `engine_differences`, not counted as a failure.
+record; its version change is reported in `engine_differences`, not counted as a failure. Two
+kinds of change a newer engine may bring are listed apart as well and do not fail a reproduction:
+fields the archived result does not have (`additions`: the record contract only ever adds), and
+numbers that differ in their last digits only (`rounding_differences`: relative difference at most
+ROUNDING_TOLERANCE, as when a model is fitted by an equivalent but differently ordered computation).
 """
 
 from __future__ import annotations
@@ -15,10 +19,13 @@ from service.records.building import compute_result
 from service.records.hashing import canonical_json, inputs_sha256, load_canonical
 
 MAX_LISTED = 200
+ROUNDING_TOLERANCE = 1e-12
 COMPARED = (
     "every value under result except result.engine, compared exactly after the archive's RFC 8785 "
     "round trip, and the SHA-256 of the archived inputs against inputs_sha256; result.engine is "
-    "compared separately and reported in engine_differences"
+    "compared separately and reported in engine_differences; fields the archived result lacks are "
+    "listed in additions, and numbers that differ by at most 1e-12 relative in "
+    "rounding_differences, neither counted as a failure"
 )
 
 Path = list[str | int]
@@ -32,7 +39,11 @@ def reproduce(record: Mapping[str, Any], *, deadline: float | None = None) -> di
     if inputs_sha256(inputs) != record["inputs_sha256"]:
         differences.append({"path": ["inputs_sha256"], "archived": record["inputs_sha256"],
                             "recomputed": inputs_sha256(inputs)})
-    _compare(_without_engine(archived), _without_engine(recomputed), ["result"], differences)
+    found: list[dict[str, Any]] = []
+    _compare(_without_engine(archived), _without_engine(recomputed), ["result"], found)
+    additions = [d for d in found if d.get("missing_in") == "archived"]
+    rounding = [d for d in found if _last_digits_only(d)]
+    differences += [d for d in found if d not in additions and d not in rounding]
     engine_differences: list[dict[str, Any]] = []
     _compare(_engine(archived), _engine(recomputed), ["result", "engine"], engine_differences)
     return {
@@ -42,7 +53,16 @@ def reproduce(record: Mapping[str, Any], *, deadline: float | None = None) -> di
         "differences": differences[:MAX_LISTED],
         "differences_total": len(differences),
         "engine_differences": engine_differences,
+        "additions": [d["path"] for d in additions][:MAX_LISTED],
+        "rounding_differences": rounding[:MAX_LISTED],
     }
+
+
+def _last_digits_only(difference: Mapping[str, Any]) -> bool:
+    a, b = difference.get("archived"), difference.get("recomputed")
+    if type(a) is not float or type(b) is not float:
+        return False
+    return abs(a - b) <= ROUNDING_TOLERANCE * max(abs(a), abs(b))
 
 
 def _without_engine(result: Any) -> Any:

@@ -22,7 +22,7 @@ from service.report.formatting import (
     text,
     words,
 )
-from service.report.sections import abe_view, profiles_view, summary_rows
+from service.report.sections import abe_view, profiles_view, shift_view, summary_rows
 
 INTERVAL_NAMES = {
     "percentile": "Percentile",
@@ -243,6 +243,8 @@ def metric_view(index: int, metric: Mapping[str, Any], design: Mapping[str, Any]
         "ratio": _ratio_view(ident, metric, name),
         "has_abe_key": "average_bioequivalence" in metric,
         "abe": abe_view(abe) if isinstance(abe, Mapping) else None,
+        "shift": shift_view(mapping(metric.get("nonparametric"))),
+        "parallel": metric.get("analysis") == "parallel",
         "baseline": bool(design.get("baseline")),
         "unit": unit,
     }

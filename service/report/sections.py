@@ -22,6 +22,13 @@ from service.report.formatting import (
     words,
 )
 
+SCALING_WORDS = {
+    "widened_limits": "limits widened to the reference's variability (EMA 2010 §4.1.10)",
+    "reference_scaled": "reference-scaled average bioequivalence (FDA 2011 draft guidance on "
+                        "progesterone, Howe's upper bound)",
+    "none": "no scaling",
+}
+
 
 def abe_sentence(abe: Mapping[str, Any]) -> str:
     ratio = mapping(abe.get("ratio_percent"))
@@ -33,6 +40,12 @@ def abe_sentence(abe: Mapping[str, Any]) -> str:
     lower, upper = acceptance.get("lower", ratio.get("lower")), acceptance.get(
         "upper", ratio.get("upper"))
     head = f"Ratio of geometric means = {fmt(ratio.get('estimate'), 2)} %; "
+    approach = text(acceptance.get("approach"))
+    if approach:
+        # The verdict follows the scaled approach the protocol chose; its reason says how.
+        how = SCALING_WORDS.get(approach, approach)
+        return (f"{head}judged by {how}: {text(acceptance.get('reason'))}: "
+                f"{VERDICT_WORDS.get(verdict, verdict or 'undetermined')}.")
     if lower is None or upper is None:
         body = f"no {level} confidence interval could be computed"
     else:
@@ -75,13 +88,84 @@ def abe_view(abe: Mapping[str, Any]) -> dict[str, Any]:
     if abe.get("subjects") is not None:
         rows.append(("Subjects, observations in the model",
                      f"{fmt(abe.get('subjects'))}, {fmt(abe.get('observations'))}"))
+    if abe.get("design") is not None:
+        rows.insert(0, ("Design read from the table",
+                        text(abe.get("design_description")) or text(abe.get("design"))))
+    variability = mapping(abe.get("reference_variability"))
+    if variability:
+        rows.append(("Within-subject SD of the reference, s_wR (CV, df)",
+                     f"{fmt(variability.get('s_wr'), 4)} ({fmt(variability.get('cv_wr_percent'), 1)}"
+                     f" %, {fmt(variability.get('df'))})"))
+        rows.append(("Within-subject SD of the test, s_wT (CV)",
+                     f"{fmt(variability.get('s_wt'), 4)} ({fmt(variability.get('cv_wt_percent'), 1)}"
+                     " %)"))
+    left_out = [(text(s.get("subject")), text(s.get("reason")))
+                for s in abe.get("subjects_left_out") or [] if isinstance(s, Mapping)]
     return {
+        "scaling": scaling_view(mapping(abe.get("scaling"))),
+        "left_out": left_out,
         "sentence": abe_sentence(abe),
         "verdict": text(acceptance.get("verdict")) or "undetermined",
         "rows": rows,
         "rounding": text(acceptance.get("rounding")),
         "reason": text(acceptance.get("reason")),
         "method": text(abe.get("method")),
+    }
+
+
+def scaling_view(scaling: Mapping[str, Any]) -> dict[str, Any] | None:
+    """The scaled-limits block: which approach, whether it applied and why, what was compared."""
+    if not scaling:
+        return None
+    limits = mapping(scaling.get("limits_percent"))
+    criterion = mapping(scaling.get("criterion"))
+    rows = [
+        ("Approach fixed by the protocol", SCALING_WORDS.get(text(scaling.get("approach")),
+                                                             text(scaling.get("approach")))),
+        ("Applied", "yes" if scaling.get("applied") else "no"),
+        ("Limits used (percent)", percent_interval(limits.get("lower"), limits.get("upper"))),
+        ("Point estimate (percent), within 80.00–125.00 %",
+         f"{fmt(scaling.get('point_estimate_percent'), 2)}, "
+         + _yes_no(scaling.get("point_estimate_within"))),
+    ]
+    if criterion:
+        rows.append(("Criterion (μT − μR)² − θ·σ²_wR: estimate, 95 % upper bound",
+                     f"{fmt(criterion.get('estimate'), 6)}, {fmt(criterion.get('upper_bound'), 6)}"))
+        rows.append(("θ, s_wR, df of s²_wR", f"{fmt(criterion.get('theta'), 4)}, "
+                     f"{fmt(criterion.get('s_wr'), 4)}, {fmt(criterion.get('df'))}"))
+    return {
+        "rows": rows,
+        "verdict": text(scaling.get("verdict")) or "undetermined",
+        "reason": text(scaling.get("reason")),
+        "method": text(scaling.get("method")),
+        "caution": text(scaling.get("caution")),
+    }
+
+
+def _yes_no(flag: Any) -> str:
+    return "yes" if flag is True else "no" if flag is False else DASH
+
+
+def shift_view(comparison: Mapping[str, Any]) -> dict[str, Any] | None:
+    """The distribution-free Tmax comparison (Hodges–Lehmann shift of test minus reference)."""
+    if not comparison:
+        return None
+    limits = mapping(comparison.get("limits"))
+    rows = [
+        ("Shift of test minus reference (Hodges–Lehmann)", fmt(comparison.get("shift"), 3)),
+        (f"{level_percent(comparison.get('confidence_level'))} distribution-free interval",
+         f"[{fmt(comparison.get('lower'), 3)}, {fmt(comparison.get('upper'), 3)}]"),
+        ("Subjects with both treatments", fmt(comparison.get("pairs"))),
+        ("Interval from", words(text(comparison.get("interval_method")))),
+    ]
+    if limits:
+        rows.append(("Limits set by the protocol",
+                     f"[{fmt(limits.get('lower'), 3)}, {fmt(limits.get('upper'), 3)}]"))
+    return {
+        "rows": rows,
+        "verdict": text(comparison.get("verdict")),
+        "description": text(comparison.get("description")),
+        "reason": text(comparison.get("reason")),
     }
 
 

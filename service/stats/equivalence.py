@@ -1,11 +1,12 @@
-"""Average bioequivalence on the log scale after a crossover study.
+"""Average bioequivalence on the log scale after a crossover or replicate study.
 
 The model is the fixed-effects linear model of a crossover,
-``log y = sequence + subject(sequence) + period + treatment + error``, fitted by least squares on
-the full dummy design. That design is rank-deficient on purpose (subjects are nested in
-sequences, every factor keeps all its levels), so the fit uses the pseudo-inverse and the rank
-comes from the design itself; the treatment contrast test − reference is estimable in it and its
-estimate does not depend on the generalised inverse chosen.
+``log y = sequence + subject(sequence) + period + treatment + error``, fitted by least squares
+with the subject effects absorbed (crossover_fit: within-subject sweep, Frisch–Waugh–Lovell);
+sequence is nested in subject and absorbed with it. The reduced design keeps every level of
+period and treatment, so it is rank-deficient on purpose: the rank comes from the reduced design,
+the treatment contrast test − reference is checked for estimability, and its estimate does not
+depend on the generalised inverse chosen. Work and memory are linear in the observations.
 """
 
 from __future__ import annotations
@@ -20,13 +21,20 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import stats as sps
 
+from service.stats.crossover_fit import fit_absorbed
 from service.stats.diagnostics import Diagnostic
+from service.stats.observations import CodedObservations, code_observations
+from service.stats.phases import check_deadline
 
 ROUNDING_RULE = (
     "The confidence bounds in percent are rounded to two decimals, half away from zero, from "
     "their shortest decimal representation, and then compared with the limits inclusively."
 )
 
+# The text archived with every crossover record. The fit now absorbs the subject effects instead of
+# forming the full dummy design, but the least-squares solution of the estimable contrast is the
+# same one (Frisch–Waugh–Lovell), so the archived description stays as it was: records of unchanged
+# requests keep their exact text.
 METHOD = (
     "Fixed-effects linear model on natural-log values: sequence + subject within sequence + "
     "period + treatment, least squares on the full dummy design (pseudo-inverse, rank from the "
@@ -34,8 +42,8 @@ METHOD = (
     "by sequence (between-subject stratum)."
 )
 
-# Relative tolerance for the rank and for the estimability of the contrast.
-_RANK_RTOL = 1e-10
+# Phases of the fit, for the deadline checks: coding, within-subject fit, contrast, sequence.
+_PHASES = 4
 
 
 @dataclass(frozen=True)
@@ -95,7 +103,7 @@ def judge_ratio_interval(
     Both bounds are rounded with :func:`round_percent`; the interval passes when
     ``limit_lower <= rounded lower`` and ``rounded upper <= limit_upper``.
     """
-    limit_lower, limit_upper = _check_limits(limits_percent)
+    limit_lower, limit_upper = check_limits(limits_percent)
     if lower is None or upper is None or not (math.isfinite(lower) and math.isfinite(upper)):
         return RatioAcceptance(limit_lower, limit_upper, None, None, "undetermined",
                                reason_if_missing)
@@ -115,52 +123,57 @@ def average_bioequivalence(
     *, subjects: Sequence[str], sequences: Sequence[str], periods: Sequence[int],
     treatments: Sequence[str], values: NDArray[np.float64], test: str, reference: str,
     confidence_level: float = 0.90, limits_percent: tuple[float, float] = (80.0, 125.0),
+    deadline: float | None = None,
 ) -> AverageBioequivalence:
     """Log-scale average bioequivalence of ``test`` against ``reference``.
 
     One entry per observation (long form); values must be finite and > 0. The caller passes
     complete subjects only. The interval is the two-sided ``confidence_level`` interval of the
     treatment contrast, which at 90 % is the two one-sided tests at 5 % (Schuirmann 1987).
+    ``deadline`` (a time.monotonic() value) is checked between phases: PhaseTimeExceeded, a
+    ComputeTimeExceeded.
     """
-    y, subj_codes, seq_codes, per_codes, trt_codes, labels = _validate(
-        subjects, sequences, periods, treatments, values, test, reference, confidence_level)
-    limit_lower, limit_upper = _check_limits(limits_percent)
-    subject_labels, sequence_labels, period_labels, treatment_labels = labels
-    n_obs = y.size
-    n_subjects = len(subject_labels)
+    coded = code_observations(subjects, sequences, periods, treatments, values, test, reference,
+                              confidence_level)
+    return fit_average_bioequivalence(coded, test=test, reference=reference,
+                                      confidence_level=confidence_level,
+                                      limits_percent=limits_percent, deadline=deadline)
+
+
+def fit_average_bioequivalence(
+    coded: CodedObservations, *, test: str, reference: str, confidence_level: float,
+    limits_percent: tuple[float, float], method: str = METHOD,
+    sequence_subjects: NDArray[np.bool_] | None = None,
+    sequence_unavailable: Diagnostic | None = None, deadline: float | None = None,
+) -> AverageBioequivalence:
+    """The fixed-effects fit of already validated observations (crossover or replicate).
+
+    The sequence effect uses the subjects where ``sequence_subjects`` is true (all when None);
+    with ``sequence_unavailable`` set it is not computed and that diagnostic is reported."""
+    limit_lower, limit_upper = check_limits(limits_percent)
+    log_y = coded.log_values
+    n_obs = log_y.size
+    n_subjects = len(coded.subject_labels)
+    n_periods, n_treatments = len(coded.period_labels), len(coded.treatment_labels)
     diagnostics: list[Diagnostic] = []
 
-    log_y = np.log(y)
-    # Full dummy design: intercept, every level of every factor (aliasing resolved by pinv).
-    blocks = [np.ones((n_obs, 1))]
-    for codes, k in ((seq_codes, len(sequence_labels)), (subj_codes, n_subjects),
-                     (per_codes, len(period_labels)), (trt_codes, len(treatment_labels))):
-        blocks.append(np.eye(k)[codes])
-    design = np.hstack(blocks)
-    offset_treatment = 1 + len(sequence_labels) + n_subjects + len(period_labels)
-
-    design_pinv = np.linalg.pinv(design, rcond=_RANK_RTOL)
-    beta = design_pinv @ log_y
-    xtx_pinv = design_pinv @ design_pinv.T  # (X'X)^+ = X^+ (X^+)'
-    rank = int(np.linalg.matrix_rank(design, tol=_RANK_RTOL * max(design.shape)
-                                     * np.linalg.norm(design, 2)))
-    df = n_obs - rank
-
-    contrast = np.zeros(design.shape[1])
-    contrast[offset_treatment + treatment_labels.index(test)] = 1.0
-    contrast[offset_treatment + treatment_labels.index(reference)] = -1.0
-    # Estimable iff the contrast lies in the row space of the design: L X^+ X = L.
-    projection = contrast @ design_pinv @ design
-    if not np.allclose(projection, contrast, atol=1e-8):
+    check_deadline(deadline, "the within-subject fit", 1, _PHASES)
+    fit = fit_absorbed(log_y, coded.subject_codes, n_subjects,
+                       [(coded.period_codes, n_periods), (coded.treatment_codes, n_treatments)])
+    check_deadline(deadline, "the treatment contrast", 2, _PHASES)
+    contrast = np.zeros(n_periods + n_treatments)
+    contrast[n_periods + coded.treatment_labels.index(test)] = 1.0
+    contrast[n_periods + coded.treatment_labels.index(reference)] = -1.0
+    estimated = fit.contrast(contrast)
+    if estimated is None:
         raise ValueError("treatments: the test − reference contrast is not estimable from this "
                          "design (test and reference are confounded with subjects or periods)")
-    estimate = float(contrast @ beta)
+    estimate, variance_factor = estimated
+    df = fit.df
 
-    residuals = log_y - design @ beta
-    sse = float(residuals @ residuals)
-    mse: float | None = sse / df if df > 0 else None
+    mse: float | None = fit.sse / df if df > 0 else None
     se: float | None = None
-    ratio = _exp_percent(estimate)
+    ratio = exp_percent(estimate)
     lower = upper = p_lower = p_upper = None
     cv: float | None = None
     reason_missing = "no confidence interval could be computed"
@@ -169,8 +182,8 @@ def average_bioequivalence(
                                       "model fits the data exactly; no standard error"))
         reason_missing = "zero residual degrees of freedom"
     else:
-        cv = _finite_or_none(100.0 * math.sqrt(math.expm1(mse))) if mse < 700 else None
-        se = math.sqrt(mse * float(contrast @ xtx_pinv @ contrast))
+        cv = cv_percent(mse)
+        se = math.sqrt(mse * variance_factor)
         # An exact fit leaves only rounding noise in the residuals: treat it as zero variance.
         noise_floor = 1e-12 * max(1.0, float(np.max(np.abs(log_y))))
         if math.sqrt(mse) <= noise_floor:
@@ -179,18 +192,15 @@ def average_bioequivalence(
             reason_missing = "the residual variance is zero"
             se = 0.0
         else:
-            alpha = 1.0 - confidence_level
-            t_crit = float(sps.t.ppf(1.0 - alpha / 2.0, df))
-            lower = _exp_percent(estimate - t_crit * se)
-            upper = _exp_percent(estimate + t_crit * se)
-            # Two one-sided tests, Schuirmann 1987: H0 ratio <= lower, H0 ratio >= upper.
-            t_lower = (estimate - math.log(limit_lower / 100.0)) / se
-            t_upper = (estimate - math.log(limit_upper / 100.0)) / se
-            p_lower = float(sps.t.sf(t_lower, df))
-            p_upper = float(sps.t.cdf(t_upper, df))
+            lower, upper, p_lower, p_upper = interval_and_tost(
+                estimate, se, df, confidence_level, (limit_lower, limit_upper))
 
-    seq = _sequence_effect(log_y, subj_codes, seq_codes, n_subjects, len(sequence_labels),
-                           diagnostics)
+    check_deadline(deadline, "the sequence effect", 3, _PHASES)
+    if sequence_unavailable is not None:
+        diagnostics.append(sequence_unavailable)
+        seq: tuple[float | None, float | None, int | None, int | None] = (None, None, None, None)
+    else:
+        seq = _sequence_effect(coded, sequence_subjects, diagnostics)
     if lower is None or upper is None:
         acceptance = judge_ratio_interval(None, None, (limit_lower, limit_upper),
                                           reason_if_missing=reason_missing)
@@ -203,21 +213,51 @@ def average_bioequivalence(
         p_lower=p_lower, p_upper=p_upper, residual_mean_square=mse,
         within_subject_cv_percent=cv, sequence_f=seq[0], sequence_p=seq[1],
         sequence_df_numerator=seq[2], sequence_df_denominator=seq[3], acceptance=acceptance,
-        diagnostics=tuple(diagnostics))
+        diagnostics=tuple(diagnostics), method=method)
+
+
+def interval_and_tost(
+    estimate: float, standard_error: float, df: float, confidence_level: float,
+    limits_percent: tuple[float, float],
+) -> tuple[float | None, float | None, float, float]:
+    """Ratio bounds in percent of the t interval and the two one-sided tests' p-values.
+
+    ``standard_error`` must be > 0 and ``df`` > 0 (an integer, or Welch–Satterthwaite's)."""
+    alpha = 1.0 - confidence_level
+    t_crit = float(sps.t.ppf(1.0 - alpha / 2.0, df))
+    lower = exp_percent(estimate - t_crit * standard_error)
+    upper = exp_percent(estimate + t_crit * standard_error)
+    # Two one-sided tests, Schuirmann 1987: H0 ratio <= lower, H0 ratio >= upper.
+    t_lower = (estimate - math.log(limits_percent[0] / 100.0)) / standard_error
+    t_upper = (estimate - math.log(limits_percent[1] / 100.0)) / standard_error
+    return lower, upper, float(sps.t.sf(t_lower, df)), float(sps.t.cdf(t_upper, df))
+
+
+def cv_percent(variance_log: float) -> float | None:
+    """100·sqrt(exp(s²) − 1): the CV of a lognormal variable whose log has variance s²."""
+    return finite_or_none(100.0 * math.sqrt(math.expm1(variance_log))) if variance_log < 700 else None
 
 
 def _sequence_effect(
-    log_y: NDArray[np.float64], subj_codes: NDArray[np.intp], seq_codes: NDArray[np.intp],
-    n_subjects: int, n_sequences: int, diagnostics: list[Diagnostic],
+    coded: CodedObservations, use: NDArray[np.bool_] | None, diagnostics: list[Diagnostic],
 ) -> tuple[float | None, float | None, int | None, int | None]:
     """F = MS(sequence) / MS(subject within sequence) from the per-subject sums of log values.
 
     Between-subject stratum of the crossover: the subject sums carry the sequence and subject
     effects only (every subject received the same set of treatments), so a one-way analysis of
-    variance of the sums by sequence gives both mean squares.
+    variance of the sums by sequence gives both mean squares. Work is linear in the data.
     """
-    df_num = n_sequences - 1
-    df_den = n_subjects - n_sequences
+    n_subjects = len(coded.subject_labels)
+    totals = np.bincount(coded.subject_codes, weights=coded.log_values, minlength=n_subjects)
+    subject_sequence = coded.sequence_of_subject()
+    if use is not None:
+        totals, subject_sequence = totals[use], subject_sequence[use]
+    n_sequences = len(coded.sequence_labels)
+    counts = np.bincount(subject_sequence, minlength=n_sequences)
+    present = counts > 0
+    n_used_sequences = int(present.sum())
+    df_num = n_used_sequences - 1
+    df_den = totals.size - n_used_sequences
     if df_num < 1:
         diagnostics.append(Diagnostic("single_sequence", "only one sequence: no sequence effect"))
         return None, None, None, None
@@ -225,11 +265,8 @@ def _sequence_effect(
         diagnostics.append(Diagnostic("no_between_subject_df", "as many sequences as subjects: "
                                       "no sequence effect"))
         return None, None, df_num, None
-    totals = np.bincount(subj_codes, weights=log_y, minlength=n_subjects)
-    subject_sequence = np.zeros(n_subjects, dtype=np.intp)
-    subject_sequence[subj_codes] = seq_codes
-    counts = np.bincount(subject_sequence, minlength=n_sequences)
-    seq_means = np.bincount(subject_sequence, weights=totals, minlength=n_sequences) / counts
+    sums = np.bincount(subject_sequence, weights=totals, minlength=n_sequences)
+    seq_means = np.divide(sums, counts, out=np.zeros(n_sequences), where=present)
     grand = totals.mean()
     ss_seq = float(np.sum(counts * (seq_means - grand) ** 2))
     ss_subj = float(np.sum((totals - seq_means[subject_sequence]) ** 2))
@@ -238,75 +275,10 @@ def _sequence_effect(
                                       "vary within sequences: no sequence effect"))
         return None, None, df_num, df_den
     f = (ss_seq / df_num) / (ss_subj / df_den)
-    return _finite_or_none(f), _finite_or_none(float(sps.f.sf(f, df_num, df_den))), df_num, df_den
+    return finite_or_none(f), finite_or_none(float(sps.f.sf(f, df_num, df_den))), df_num, df_den
 
 
-def _validate(
-    subjects: Sequence[str], sequences: Sequence[str], periods: Sequence[int],
-    treatments: Sequence[str], values: NDArray[np.float64], test: str, reference: str,
-    confidence_level: float,
-) -> tuple[NDArray[np.float64], NDArray[np.intp], NDArray[np.intp], NDArray[np.intp],
-           NDArray[np.intp], tuple[list[str], list[str], list[int], list[str]]]:
-    y = np.asarray(values, dtype=np.float64)
-    problems: list[str] = []
-    if y.ndim != 1:
-        raise ValueError(f"values: expected a one-dimensional array, got shape {y.shape}")
-    n = y.size
-    for name, seq in (("subjects", subjects), ("sequences", sequences), ("periods", periods),
-                      ("treatments", treatments)):
-        if len(seq) != n:
-            problems.append(f"{name}: has {len(seq)} entries, values has {n}")
-    if problems:
-        raise ValueError("; ".join(problems))
-    bad = np.flatnonzero(~np.isfinite(y) | (y <= 0))
-    if bad.size:
-        problems.append(f"values: entries {bad[:10].tolist()} are not finite positive numbers "
-                        "(the analysis is on the log scale)")
-    if not (isinstance(confidence_level, float | int) and 0.0 < confidence_level < 1.0):
-        problems.append(f"confidence_level: {confidence_level!r} is not between 0 and 1")
-    if test == reference:
-        problems.append(f"test/reference: both are {test!r}")
-    trt_set = set(treatments)
-    for name, label in (("test", test), ("reference", reference)):
-        if label not in trt_set:
-            problems.append(f"{name}: treatment {label!r} has no observation")
-    seq_of: dict[str, str] = {}
-    seen: set[tuple[str, int]] = set()
-    treated: dict[str, set[str]] = {}
-    for i, (s, q, p, t) in enumerate(zip(subjects, sequences, periods, treatments, strict=True)):
-        if seq_of.setdefault(s, q) != q:
-            problems.append(f"sequences[{i}]: subject {s!r} is in sequence {seq_of[s]!r} and {q!r}")
-        if (s, p) in seen:
-            problems.append(f"periods[{i}]: subject {s!r} has more than one value in period {p}")
-        seen.add((s, p))
-        treated.setdefault(s, set()).add(t)
-    for s, trts in treated.items():
-        missing = {test, reference} - trts
-        if missing and test in trt_set and reference in trt_set:
-            problems.append(f"subjects: {s!r} has no value for {sorted(missing)}")
-    if n < 3:
-        problems.append(f"values: {n} observations are too few")
-    if problems:
-        raise ValueError("; ".join(problems[:20]))
-
-    subject_labels = sorted(seq_of)
-    sequence_labels = sorted(set(sequences))
-    period_labels = sorted(set(periods))
-    treatment_labels = sorted(trt_set)
-    codes = [_codes(col, lab) for col, lab in ((subjects, subject_labels),
-                                                (sequences, sequence_labels),
-                                                (periods, period_labels),
-                                                (treatments, treatment_labels))]
-    return (y, codes[0], codes[1], codes[2], codes[3],
-            (subject_labels, sequence_labels, period_labels, treatment_labels))
-
-
-def _codes(column: Sequence[Any], levels: Sequence[Any]) -> NDArray[np.intp]:
-    index = {v: i for i, v in enumerate(levels)}
-    return np.array([index[v] for v in column], dtype=np.intp)
-
-
-def _check_limits(limits_percent: tuple[float, float]) -> tuple[float, float]:
+def check_limits(limits_percent: tuple[float, float]) -> tuple[float, float]:
     lower, upper = (float(v) for v in limits_percent)
     if not (math.isfinite(lower) and math.isfinite(upper) and 0.0 < lower < upper):
         raise ValueError(f"limits_percent: {limits_percent!r} must be finite with "
@@ -314,13 +286,13 @@ def _check_limits(limits_percent: tuple[float, float]) -> tuple[float, float]:
     return lower, upper
 
 
-def _exp_percent(log_value: float) -> float | None:
+def exp_percent(log_value: float) -> float | None:
     if log_value > 700.0:
         return None
-    return _finite_or_none(100.0 * math.exp(log_value))
+    return finite_or_none(100.0 * math.exp(log_value))
 
 
-def _finite_or_none(value: float) -> float | None:
+def finite_or_none(value: float) -> float | None:
     return value if math.isfinite(value) else None
 
 

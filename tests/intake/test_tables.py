@@ -263,8 +263,9 @@ def test_treatment_not_in_design() -> None:
 
 
 def test_duplicates() -> None:
-    """A subject has one measurement per period and per treatment of a metric in a crossover
-    (common practice)."""
+    """A subject has one measurement of a metric per period (common practice). A treatment that
+    recurs in another period is a replicate design (EMA 2010 §4.1.10 and its Q&A), not a duplicate:
+    it is read, and the design is judged later from the whole table."""
     raw = make_request()
     extra = dict(raw["records"][0])
     extra["treatment"] = "B"  # same subject, metric and period as records[0]
@@ -272,7 +273,24 @@ def test_duplicates() -> None:
     index = len(raw["records"]) - 1
     problems = problems_of(raw)
     find(problems, ("records", index, "period"), "records[0]")
-    find(problems, ("records", index, "treatment"), "records[2]")
+    assert not [p for p in problems if p.loc == ("records", index, "treatment")]
+
+
+def test_a_treatment_in_a_fourth_period_is_kept_as_a_replicate() -> None:
+    """Replicate designs give a subject the same treatment in two periods (EMA 2010 §4.1.10): every
+    observation is kept, and the subject's value for θ is the mean of its replicates."""
+    raw = make_request()
+    first = raw["records"][0]
+    extra = {**first, "period": 4, "value": first["value"] + 1.0}
+    raw["records"].append(extra)
+    inputs = normalize_request(raw)
+    (table,) = build_tables(inputs)
+    i = table.subjects.index(first["subject"])
+    j = table.treatments.index(first["treatment"])
+    assert table.values[i, j] == (first["value"] + extra["value"]) / 2
+    assert table.periods[i, j] == first["period"]
+    assert table.replicated
+    assert sum(o.subject == first["subject"] for o in table.observations) == 4
 
 
 def test_mapping_disagrees_between_metrics_and_with_profiles() -> None:

@@ -3,6 +3,7 @@ from __future__ import annotations
 import json
 import math
 import statistics
+import time
 from typing import Any
 
 import numpy as np
@@ -12,6 +13,7 @@ import statsmodels.formula.api as smf
 from scipy import stats as sps
 from statsmodels.stats.anova import anova_lm
 
+from service.stats.deadlines import ComputeTimeExceeded
 from service.stats.equivalence import (
     ROUNDING_RULE,
     AverageBioequivalence,
@@ -282,3 +284,93 @@ def test_tmax_summary_matches_stdlib_statistics() -> None:
     assert out["P"] == {"n": 0, "median": None, "min": None, "max": None}
     with pytest.raises(ValueError, match="tmax_by_treatment"):
         tmax_summary({"T": [1.0, float("nan")]})
+
+
+def full_dummy_fit(df: pd.DataFrame, test: str = "T", reference: str = "R") -> dict[str, float]:
+    """The fit as it was before the within-subject sweep: least squares on the full dummy
+    design (intercept and every level of sequence, subject, period and treatment) by the
+    pseudo-inverse, rank from the design. Kept here as an independent reference."""
+    log_y = np.log(df["y"].to_numpy(dtype=np.float64))
+    n_obs = log_y.size
+    blocks = [np.ones((n_obs, 1))]
+    offset = 1
+    for name in ("sequence", "subject", "period", "treatment"):
+        levels = sorted(set(df[name]))
+        codes = np.array([levels.index(v) for v in df[name]])
+        blocks.append(np.eye(len(levels))[codes])
+        if name == "treatment":
+            treatment_levels = levels
+        else:
+            offset += len(levels)
+    design = np.hstack(blocks)
+    pinv = np.linalg.pinv(design, rcond=1e-10)
+    beta = pinv @ log_y
+    rank = int(np.linalg.matrix_rank(design, tol=1e-10 * max(design.shape)
+                                     * np.linalg.norm(design, 2)))
+    contrast = np.zeros(design.shape[1])
+    contrast[offset + treatment_levels.index(test)] = 1.0
+    contrast[offset + treatment_levels.index(reference)] = -1.0
+    if not np.allclose(contrast @ pinv @ design, contrast, atol=1e-8):
+        raise ValueError("not estimable")
+    residuals = log_y - design @ beta
+    df_resid = n_obs - rank
+    mse = float(residuals @ residuals) / df_resid
+    se = math.sqrt(mse * float(contrast @ (pinv @ pinv.T) @ contrast))
+    estimate = float(contrast @ beta)
+    t_crit = float(sps.t.ppf(0.95, df_resid))
+    return {"estimate": estimate, "se": se, "df": df_resid, "mse": mse,
+            "lower": 100 * math.exp(estimate - t_crit * se),
+            "upper": 100 * math.exp(estimate + t_crit * se),
+            "p_lower": float(sps.t.sf((estimate - math.log(0.8)) / se, df_resid)),
+            "p_upper": float(sps.t.cdf((estimate - math.log(1.25)) / se, df_resid))}
+
+
+REFERENCE_CASES = {
+    "balanced_2x2": ({"TR": 10, "RT": 10}, None),
+    "unbalanced_2x2": ({"TR": 17, "RT": 8}, None),
+    "williams_three_treatments": ({s: 2 for s in WILLIAMS_3}, None),
+    "williams_t_and_r_only": ({s: 3 for s in WILLIAMS_3}, "P"),
+    "unbalanced_four_period_two_arms": ({"TRRT": 7, "RTTR": 4}, None),
+}
+
+
+@pytest.mark.parametrize("case", sorted(REFERENCE_CASES))
+def test_absorbed_fit_matches_the_full_dummy_pseudo_inverse(case: str) -> None:
+    """Source: the full-dummy pseudo-inverse least squares kept in this file (full_dummy_fit)
+    and the Frisch–Waugh–Lovell theorem (Frisch & Waugh 1933; Lovell 1963): absorbing the
+    subjects gives the same estimate, residuals and rank, so every figure agrees to 1e-10."""
+    orders, dropped = REFERENCE_CASES[case]
+    df = simulate(40 + len(case), orders, period_effects=(0.0, 0.05, -0.04, 0.02))
+    if dropped:
+        df = df[df["treatment"] != dropped].reset_index(drop=True)
+    r = analyse(df)
+    old = full_dummy_fit(df)
+    assert r.df == old["df"]
+    assert r.log_difference == pytest.approx(old["estimate"], rel=1e-10, abs=1e-13)
+    for name, value in (("se", r.standard_error), ("mse", r.residual_mean_square),
+                        ("lower", r.ratio_lower_percent), ("upper", r.ratio_upper_percent),
+                        ("p_lower", r.p_lower), ("p_upper", r.p_upper)):
+        assert value == pytest.approx(old[name], rel=1e-10), name
+    assert r.within_subject_cv_percent == pytest.approx(
+        100 * math.sqrt(math.expm1(old["mse"])), rel=1e-10)
+
+
+def test_confounded_contrast_raises_as_the_full_dummy_fit_does() -> None:
+    """Source: with every subject in one sequence of a 2×2, treatment is aliased with period
+    (design fact, common practice); the full-dummy fit kept in this file rejects the contrast
+    too."""
+    df = simulate(8, {"TR": 6})
+    with pytest.raises(ValueError, match="not estimable"):
+        full_dummy_fit(df)
+    with pytest.raises(ValueError, match="treatments: the test − reference contrast is not "
+                                         "estimable from this design"):
+        analyse(df)
+
+
+def test_passed_deadline_stops_the_fit() -> None:
+    """Source: service.stats.deadlines contract — a deadline (time.monotonic()) that has passed
+    raises ComputeTimeExceeded and returns nothing partial; a distant one changes nothing."""
+    df = simulate(9, {"TR": 5, "RT": 5})
+    with pytest.raises(ComputeTimeExceeded, match="time is up"):
+        analyse(df, deadline=time.monotonic() - 1.0)
+    assert analyse(df, deadline=time.monotonic() + 3600.0) == analyse(df)
