@@ -18,6 +18,7 @@ from service.records.profiles import derive_profile_metrics
 from service.records.tmax import tmax_comparison
 from service.stats.designs import DesignRecognition
 from service.stats.equivalence import tmax_summary
+from service.stats.phases import check_deadline
 from service.stats.ratio import analyse_ratio, ratio_analysis_to_json
 
 ROLES = ("test", "reference", "baseline")
@@ -33,25 +34,34 @@ def engine_versions() -> dict[str, str]:
     }
 
 
-def build_record(inputs: dict[str, Any], *, deadline: float | None = None) -> dict[str, Any]:
-    """The record without `id`/`created_at` (the archive adds those)."""
+def build_record(
+    inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None
+) -> dict[str, Any]:
+    """The record without `id`/`created_at` (the archive adds those). `threads` caps the
+    bootstrap's threads (None: every core this process may use); no number depends on it."""
     return {
         "inputs_sha256": inputs_sha256(inputs),
         "inputs": inputs,
-        "result": compute_result(inputs, deadline=deadline),
+        "result": compute_result(inputs, deadline=deadline, threads=threads),
     }
 
 
-def compute_result(inputs: dict[str, Any], *, deadline: float | None = None) -> dict[str, Any]:
+def compute_result(
+    inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None
+) -> dict[str, Any]:
     """The result of `inputs`. `deadline` (time.monotonic()) stops the bootstrap with
     service.stats.deadlines.ComputeTimeExceeded once it has passed."""
     warnings: list[dict[str, Any]] = []
-    derived = derive_profile_metrics(inputs)
+    # Every phase honours the compute-time cap, not only the bootstrap loop.
+    check_deadline(deadline, "the concentration–time profiles", 0, 3)
+    derived = derive_profile_metrics(inputs, deadline=deadline)
+    check_deadline(deadline, "building the tables", 1, 3)
     tables = build_tables(inputs, extra_records=derived.records)
 
     metrics: list[dict[str, Any]] = []
     for table in tables:
-        metrics.append(_analyse_metric(table, inputs, warnings, deadline))
+        check_deadline(deadline, f"the analysis of metric {table.metric!r}", 2, 3)
+        metrics.append(_analyse_metric(table, inputs, warnings, deadline, threads))
     if derived.tmax:
         summary = tmax_summary(derived.tmax)
         entry = {"metric": "tmax", "analysis": "summary_only", "summary": summary}
@@ -87,7 +97,7 @@ def compute_result(inputs: dict[str, Any], *, deadline: float | None = None) -> 
 
 def _analyse_metric(
     table: MetricTable, inputs: dict[str, Any], warnings: list[dict[str, Any]],
-    deadline: float | None = None,
+    deadline: float | None = None, threads: int | None = None,
 ) -> dict[str, Any]:
     settings = inputs["settings"]
     design = inputs["design"]
@@ -104,6 +114,7 @@ def _analyse_metric(
         limits=(settings["limits"]["lower"], settings["limits"]["upper"]),
         strata=strata,
         deadline=deadline,
+        threads=threads,
     )
     ratio_json = ratio_analysis_to_json(ratio, table.subjects)
     for diagnostic in ratio_json.pop("diagnostics", []):

@@ -10,6 +10,7 @@ import numpy as np
 
 from service.intake.tables import InvalidRequest, Problem
 from service.stats.nca import profile_metrics, profile_metrics_to_json
+from service.stats.phases import check_deadline
 
 # Metrics that go through the full analysis; tmax is summarised only (a discrete sampling time).
 ANALYSED_METRICS = ("auc_0_t", "auc_0_inf", "cmax")
@@ -59,7 +60,7 @@ def describe_rules(settings: dict[str, Any]) -> list[str]:
     return rules
 
 
-def derive_profile_metrics(inputs: dict[str, Any]) -> DerivedMetrics:
+def derive_profile_metrics(inputs: dict[str, Any], *, deadline: float | None = None) -> DerivedMetrics:
     points = inputs.get("profiles") or []
     if not points:
         return DerivedMetrics()
@@ -76,7 +77,9 @@ def derive_profile_metrics(inputs: dict[str, Any]) -> DerivedMetrics:
     profiles: list[dict[str, Any]] = []
     warnings: list[dict[str, Any]] = []
     problems: list[Problem] = []
-    for (subject, period, treatment), group in sorted(groups.items()):
+    for done, ((subject, period, treatment), group) in enumerate(sorted(groups.items())):
+        if done % 256 == 0:
+            check_deadline(deadline, "the concentration–time profiles", done, len(groups))
         group.sort(key=lambda p: p["time"])
         times = np.array([p["time"] for p in group], dtype=np.float64)
         below = np.array([bool(p["below_lloq"]) for p in group], dtype=np.bool_)

@@ -31,9 +31,12 @@ COMPARED = (
 Path = list[str | int]
 
 
-def reproduce(record: Mapping[str, Any], *, deadline: float | None = None) -> dict[str, Any]:
+def reproduce(
+    record: Mapping[str, Any], *, deadline: float | None = None, threads: int | None = None
+) -> dict[str, Any]:
     inputs = record["inputs"]
-    recomputed = load_canonical(canonical_json(compute_result(inputs, deadline=deadline)))
+    recomputed = load_canonical(canonical_json(
+        compute_result(inputs, deadline=deadline, threads=threads)))
     archived = record["result"]
     differences: list[dict[str, Any]] = []
     if inputs_sha256(inputs) != record["inputs_sha256"]:

@@ -2,8 +2,9 @@
 jackknife-after-bootstrap sums.
 
 Draws come from one xoshiro256** stream per stratum and each replicate consumes its draws in order,
-so a result never depends on where a chunk ends. The loops release the GIL, so analyses in the
-service's thread pool run side by side.
+so a result never depends on where a chunk ends. The draw loop can start from any stream states
+(streams.py finds the states where a given replicate starts), so that threads can draw blocks of
+replicates side by side (waves.py). The loops release the GIL.
 """
 
 from __future__ import annotations
@@ -37,16 +38,18 @@ def _next_lane(
 
 @numba.njit(inline="always")
 def _draw_one(
-    s0: Any, s1: Any, s2: Any, s3: Any, spare: Any, have: bool, size: Any, threshold: Any
-) -> tuple[Any, Any, Any, Any, Any, bool, Any]:  # pragma: no cover - compiled
+    s0: Any, s1: Any, s2: Any, s3: Any, spare: Any, have: bool, size: Any, threshold: Any,
+    missed: int,
+) -> tuple[Any, Any, Any, Any, Any, bool, Any, int]:  # pragma: no cover - compiled
     # Lemire 2019 (ACM TOMACS 29:3): with a lane x uniform on [0, 2³²), m = x·size, the high word
     # m >> 32 is exactly uniform on [0, size) once lanes whose low word is below 2³² mod size are
-    # rejected (probability < size/2³²).
+    # rejected (probability < size/2³²). ``missed`` counts the rejected lanes.
     while True:
         s0, s1, s2, s3, spare, have, lane = _next_lane(s0, s1, s2, s3, spare, have)
         m = lane * size
         if (m & np.uint64(0xFFFFFFFF)) >= threshold:
-            return s0, s1, s2, s3, spare, have, np.int64(m >> np.uint64(32))
+            return s0, s1, s2, s3, spare, have, np.int64(m >> np.uint64(32)), missed
+        missed += 1
 
 
 @numba.njit(inline="always")
@@ -60,7 +63,7 @@ def _mark(present: Any, b: int, bits: Any, i: Any, bitset: bool) -> Any:  # prag
 @numba.njit(cache=True, nogil=True)
 def _draw_subjects(
     states: Any, members: Any, bounds: Any, thresholds: Any, columns: Any,
-    out: Any, present: Any, index: Any,
+    out: Any, present: Any, index: Any, misses: Any,
 ) -> None:  # pragma: no cover - compiled
     # Stratum by stratum (its stream state stays in registers across the chunk), replicate b
     # draws the stratum's members two at a time into index[b, bounds[s]:bounds[s+1]] (when index
@@ -68,7 +71,8 @@ def _draw_subjects(
     # in the same pass in draw order, with two running sums per column (first and second draw of
     # each pair) to halve the add-latency chain, and added to out[b] stratum by stratum; further
     # columns are summed from index afterwards. Presence: a bitset when there are ≤ 64 subjects
-    # (present is c × 1 uint64), else plain stores of 1 into a zeroed c × n byte array.
+    # (present is c × 1 uint64), else stores of 1 into the c × n byte array, zeroed first.
+    # misses[s] is set to the number of lanes of stream s that Lemire's method rejected.
     c = out.shape[0]
     k, n = columns.shape
     bitset = n <= 64
@@ -80,22 +84,25 @@ def _draw_subjects(
     out[:, :] = 0.0
     if bitset:
         present[:, 0] = 0
+    else:
+        present[:, :] = 0
     for s in range(states.shape[0]):
         s0, s1, s2, s3, spare = states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4]
         have = states[s, 5] != 0
         start, stop = bounds[s], bounds[s + 1]
         size = np.uint64(stop - start)
         threshold = thresholds[s]
+        missed = 0
         for b in range(c):
             a0 = a1 = a2 = 0.0
             e0 = e1 = e2 = 0.0
             bits = np.uint64(0)
             t = start
             while t + 1 < stop:
-                s0, s1, s2, s3, spare, have, u = _draw_one(
-                    s0, s1, s2, s3, spare, have, size, threshold)
-                s0, s1, s2, s3, spare, have, v = _draw_one(
-                    s0, s1, s2, s3, spare, have, size, threshold)
+                s0, s1, s2, s3, spare, have, u, missed = _draw_one(
+                    s0, s1, s2, s3, spare, have, size, threshold, missed)
+                s0, s1, s2, s3, spare, have, v, missed = _draw_one(
+                    s0, s1, s2, s3, spare, have, size, threshold, missed)
                 i = u if whole else members[start + u]
                 j = v if whole else members[start + v]
                 if keep:
@@ -111,8 +118,8 @@ def _draw_subjects(
                 bits = _mark(present, b, bits, j, bitset)
                 t += 2
             if t < stop:
-                s0, s1, s2, s3, spare, have, u = _draw_one(
-                    s0, s1, s2, s3, spare, have, size, threshold)
+                s0, s1, s2, s3, spare, have, u, missed = _draw_one(
+                    s0, s1, s2, s3, spare, have, size, threshold, missed)
                 i = u if whole else members[start + u]
                 if keep:
                     index[b, t] = i
@@ -129,6 +136,7 @@ def _draw_subjects(
                 present[b, 0] |= bits
         states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4] = s0, s1, s2, s3, spare
         states[s, 5] = np.uint64(1) if have else np.uint64(0)
+        misses[s] = missed
     for b in range(c):
         for col in range(3, k):
             xc = columns[col]
@@ -142,38 +150,48 @@ def _draw_subjects(
 
 @numba.njit(cache=True, nogil=True)
 def _omission_sums_bits(
-    present: Any, n: int, finite: Any, centred: Any, omitted: Any
+    present: Any, first: int, stop: int, finite: Any, centred: Any, omitted: Any
 ) -> None:  # pragma: no cover - compiled
+    # Subject i's sums take the replicates in order, whichever subjects a call covers. They run
+    # in a private copy (no cache line shared with another thread's subjects while adding),
+    # in loops that count from 0, which numba compiles without negative-index checks.
+    if stop <= first:
+        return
     one = np.uint64(1)
+    sums = omitted[:, first:stop].copy()
+    count, sum1, sum2 = sums[0], sums[1], sums[2]
     for b in range(present.shape[0]):
         if not finite[b]:
             continue
         d = centred[b]
         dd = d * d
-        bits = present[b, 0]
-        for i in range(n):
+        bits = present[b, 0] >> np.uint64(first)
+        for i in range(stop - first):
             if not (bits >> np.uint64(i)) & one:
-                omitted[0, i] += 1.0
-                omitted[1, i] += d
-                omitted[2, i] += dd
+                count[i] += 1.0
+                sum1[i] += d
+                sum2[i] += dd
+    omitted[:, first:stop] = sums
 
 
 @numba.njit(cache=True, nogil=True)
 def _omission_sums_bytes(
-    present: Any, finite: Any, centred: Any, omitted: Any
+    present: Any, first: int, stop: int, finite: Any, centred: Any, omitted: Any
 ) -> None:  # pragma: no cover - compiled
-    c, n = present.shape
-    for b in range(c):
+    sums = omitted[:, first:stop].copy()
+    count, sum1, sum2 = sums[0], sums[1], sums[2]
+    for b in range(present.shape[0]):
         if not finite[b]:
             continue
         d = centred[b]
         dd = d * d
-        row = present[b]
-        for i in range(n):
+        row = present[b, first:stop]
+        for i in range(stop - first):
             if row[i] == 0:
-                omitted[0, i] += 1.0
-                omitted[1, i] += d
-                omitted[2, i] += dd
+                count[i] += 1.0
+                sum1[i] += d
+                sum2[i] += dd
+    omitted[:, first:stop] = sums
 
 
 def add_omission_sums(
@@ -182,21 +200,25 @@ def add_omission_sums(
     finite: NDArray[np.bool_],
     centred: NDArray[np.float64],
     omitted: NDArray[np.float64],
+    subjects: tuple[int, int] | None = None,
 ) -> None:
     """For every subject i, add over the finite replicates that do not contain i the terms
-    [1, θ*−θ̂, (θ*−θ̂)²] (the sums behind jackknife-after-bootstrap, Efron 1992 §3).
-    ``present`` is what SubjectDraws.draw returns: bitsets (n ≤ 64) or one byte per subject."""
+    [1, θ*−θ̂, (θ*−θ̂)²] (the sums behind jackknife-after-bootstrap, Efron 1992 §3), replicate
+    by replicate in order. ``present`` is what SubjectDraws.draw returns: bitsets (n ≤ 64) or one
+    byte per subject. ``subjects`` = (first, stop) limits the work to those subjects, so that
+    threads can share it without changing the order of any subject's additions."""
+    first, stop = subjects if subjects is not None else (0, n)
     if present.dtype == np.uint8:
-        _omission_sums_bytes(present, finite, centred, omitted)
+        _omission_sums_bytes(present, first, stop, finite, centred, omitted)
     else:
-        _omission_sums_bits(present, n, finite, centred, omitted)
+        _omission_sums_bits(present, first, stop, finite, centred, omitted)
 
 
 class SubjectDraws:
     """Whole-subject bootstrap samples of an (n × k) table, stratified or not: SeedSequence(seed)
     spawns one xoshiro256** stream per stratum (one stratum of everybody without strata), and each
     replicate draws, per stratum, as many of its members as it has. Replicate b always gets the
-    same draws however the replicates are split into chunks."""
+    same draws however the replicates are split into chunks or shared between threads."""
 
     def __init__(
         self, seed: int, data: NDArray[np.float64], strata: NDArray[np.int64] | None = None
@@ -216,22 +238,47 @@ class SubjectDraws:
         self._bounds = np.cumsum([0] + [g.size for g in groups]).astype(np.int64)
         self._thresholds = np.array([(1 << 32) % g.size for g in groups], dtype=np.uint64)
         self._columns = np.ascontiguousarray(data.T)
+        self.stratum_sizes = np.diff(self._bounds)
+        self.subjects = n
 
-    def draw(
+    def buffers(
         self, replicates: int, keep_index: bool = False
     ) -> tuple[NDArray[np.float64], NDArray[Any], NDArray[np.int64]]:
-        """(means (replicates × k), presence (bitsets for n ≤ 64, else bytes), the draws or an
-        empty array)."""
+        """Room for ``replicates`` replicates: (means, presence, draws), as ``draw`` returns them."""
         k, n = self._columns.shape
         means = np.empty((replicates, k), dtype=np.float64)
         present: NDArray[Any] = (
             np.empty((replicates, 1), dtype=np.uint64)
             if n <= 64
-            else np.zeros((replicates, n), dtype=np.uint8)
+            else np.empty((replicates, n), dtype=np.uint8)
         )
         # the draws are kept when asked for, or when a fourth column must be summed from them
         shape = (replicates, n) if keep_index or k > 3 else (0, 0)
-        index = np.empty(shape, dtype=np.int64)
-        _draw_subjects(self._states, self._members, self._bounds, self._thresholds,
-                       self._columns, means, present, index)
+        return means, present, np.empty(shape, dtype=np.int64)
+
+    def draw(
+        self, replicates: int, keep_index: bool = False
+    ) -> tuple[NDArray[np.float64], NDArray[Any], NDArray[np.int64]]:
+        """The next ``replicates`` replicates: (means (replicates × k), presence (bitsets for
+        n ≤ 64, else bytes), the draws or an empty array)."""
+        means, present, index = self.buffers(replicates, keep_index)
+        misses = np.empty(self._states.shape[0], dtype=np.int64)
+        self.draw_from(self._states, means, present, index, misses)
         return means, present, index
+
+    def draw_from(
+        self, states: NDArray[np.uint64], means: NDArray[np.float64], present: NDArray[Any],
+        index: NDArray[np.int64], misses: NDArray[np.int64],
+    ) -> None:
+        """Replicates drawn from the stream states ``states`` (strata × 6, see streams.py) into
+        the given buffers, leaving the states where the draws end and the number of lanes each
+        stream rejected in ``misses``. Touches no state of this object (threads share it)."""
+        _draw_subjects(states, self._members, self._bounds, self._thresholds, self._columns,
+                       means, present, index, misses)
+
+    def position(self) -> NDArray[np.uint64]:
+        """A copy of the stream states where the next replicate starts."""
+        return self._states.copy()
+
+    def move_to(self, states: NDArray[np.uint64]) -> None:
+        self._states[:] = states

@@ -159,10 +159,13 @@ def analyse_ratio(
     values: FloatArray, *, replicates: int, seed: int, confidence_level: float, interval: str,
     limits: tuple[float, float], strata: NDArray[np.int64] | None = None,
     chunk_size: int | None = None, histogram_bins: int = 40, deadline: float | None = None,
+    threads: int | None = None,
 ) -> RatioAnalysis:
     """Plug-in θ, jackknife, bootstrap with all intervals, Fieller and the acceptance check.
     Raises ValueError naming every bad argument; otherwise never returns NaN or infinity.
-    ``deadline`` (time.monotonic()) is passed to the bootstrap loop: ComputeTimeExceeded."""
+    ``deadline`` (time.monotonic()) is passed to the bootstrap loop: ComputeTimeExceeded.
+    ``threads`` caps the bootstrap's threads (None: the cores this process may use); it never
+    changes a number."""
     values = np.asarray(values, dtype=np.float64)
     _validate(values, replicates, seed, confidence_level, interval, limits, strata, chunk_size,
               histogram_bins)
@@ -201,6 +204,7 @@ def analyse_ratio(
             values, theta_of_means, theta_hat=theta, jackknife_values=jack_values,
             replicates=replicates, seed=seed, confidence_level=confidence_level, strata=strata,
             chunk_size=chunk_size, histogram_bins=histogram_bins, deadline=deadline,
+            threads=threads,
         )
         diagnostics.extend(boot.diagnostics)
         chosen = getattr(boot.intervals, interval)

@@ -8,14 +8,13 @@ counted in ``nonfinite_replicates``.
 Random subject indices: ``numpy.random.SeedSequence(seed)`` spawns one xoshiro256** stream
 (Blackman & Vigna 2021) per stratum, or one for all subjects without strata; 32-bit lanes of it are
 mapped to members of the stratum by Lemire's multiply-and-reject method, which is exactly uniform
-(kernels.py). Replicate b takes the next draws of each stream in order, so the chunk size never
-changes a number.
+(kernels.py). Replicate b takes the next draws of each stream in order, so neither the chunk size
+nor the number of threads changes a number (waves.py).
 """
 
 from __future__ import annotations
 
 import math
-import time
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -23,8 +22,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.stats import intervals as iv
-from service.stats import kernels
-from service.stats.deadlines import ComputeTimeExceeded
+from service.stats import kernels, waves
 from service.stats.diagnostics import Diagnostic
 
 __all__ = ["Bootstrap", "Diagnostic", "Histogram", "Intervals", "Jackknife", "MonteCarloError",
@@ -34,8 +32,9 @@ FloatArray = NDArray[np.float64]
 MeansStatistic = Callable[[FloatArray], FloatArray]
 
 # Draws per chunk: a chunk keeps only its means and presence flags (at most one byte per draw),
-# so this bounds the per-chunk memory at about 256 kB whatever B is.
-CHUNK_INDICES = 1 << 18
+# so this bounds the per-chunk memory at about 1 MB whatever B is (each thread holds two chunks
+# at a time). A chunk is also what one thread draws between two hand-overs.
+CHUNK_INDICES = 1 << 20
 
 
 @dataclass(frozen=True)
@@ -130,31 +129,28 @@ def bootstrap(
     chunk_size: int | None = None,
     histogram_bins: int = 40,
     deadline: float | None = None,
+    threads: int | None = None,
 ) -> Bootstrap:
     """Nonparametric bootstrap of subjects (Efron & Tibshirani 1993 ch. 6) with all intervals
-    and the jackknife-after-bootstrap Monte-Carlo errors. Inputs must already be validated.
+    and the jackknife-after-bootstrap Monte-Carlo errors. Inputs must already be validated,
+    except ``threads``.
 
     ``deadline`` is a time.monotonic() value: once it has passed, the loop stops before the
-    next chunk and raises ComputeTimeExceeded (no partial result is returned)."""
+    next chunk and raises ComputeTimeExceeded (no partial result is returned). ``threads`` caps
+    the threads that draw replicates (None: as many as the cores this process may use); neither
+    it nor ``chunk_size`` changes any number."""
+    if threads is not None and (
+        isinstance(threads, bool) or not isinstance(threads, int | np.integer) or threads < 1
+    ):
+        raise ValueError(f"threads: must be a positive integer, got {threads!r}")
     n, _ = data.shape
     draws = kernels.SubjectDraws(seed, data, strata)
     chunk = chunk_size if chunk_size is not None else default_chunk_size(n)
-    theta_star = np.empty(replicates, dtype=np.float64)
-    # Per subject i: Σ over replicates omitting i of [1, θ*−θ̂, (θ*−θ̂)²] (finite replicates only).
-    omitted = np.zeros((3, n), dtype=np.float64)
-    done = 0
-    while done < replicates:
-        if deadline is not None and time.monotonic() > deadline:
-            raise ComputeTimeExceeded(done, replicates)
-        c = min(chunk, replicates - done)
-        means, present, _ = draws.draw(c)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            theta = np.asarray(statistic(means), dtype=np.float64)
-        finite = np.isfinite(theta)
-        centred = np.where(finite, theta - theta_hat, 0.0)
-        kernels.add_omission_sums(present, n, finite, centred, omitted)
-        theta_star[done : done + c] = theta
-        done += c
+    # omitted[:, i] = Σ over the finite replicates omitting subject i of [1, θ*−θ̂, (θ*−θ̂)²]
+    theta_star, omitted = waves.resample(
+        draws, statistic, theta_hat, replicates, chunk,
+        int(threads) if threads is not None else waves.available_threads(), deadline,
+    )
     return _summarise(
         theta_star, omitted, theta_hat, jackknife_values, replicates, seed,
         confidence_level, histogram_bins,

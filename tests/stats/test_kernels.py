@@ -151,3 +151,105 @@ def test_sorted_quantiles_equal_numpy_quantile_bit_for_bit(size: int) -> None:
     levels = np.concatenate([rng.random(200), [0.0, 1.0, 0.05, 0.95, 0.5, 1e-9, 1 - 1e-9]])
     np.testing.assert_array_equal(sorted_quantiles(x, levels),
                                   np.quantile(x, levels, method="linear"))
+
+
+def _lanes_from(state6: np.ndarray, count: int) -> list[int]:
+    """The next ``count`` 32-bit lanes of a six-word stream state (s0..s3, spare, spare unused),
+    two per output of the reference generator above, low half first."""
+    lanes = [int(state6[4])] if state6[5] else []
+    for word in _xoshiro256ss_reference([int(v) for v in state6[:4]], count // 2 + 1):
+        lanes += [word & 0xFFFFFFFF, word >> 32]
+    return lanes[:count]
+
+
+@pytest.mark.parametrize("seed", [0, 41])
+def test_jump_to_any_lane_equals_stepping(seed: int) -> None:
+    """xoshiro256** is linear over GF(2) (Blackman & Vigna 2021 §3), so the state m outputs on is
+    J^m·state: the state streams.at_lane jumps to must produce the same lanes as stepping the
+    published algorithm (the Python reference above) there, at even and odd lanes and from a
+    state holding a spare half."""
+    from service.stats import streams
+
+    table = streams.jump_table()
+    start = np.zeros(6, dtype=np.uint64)
+    start[:4] = np.random.SeedSequence(seed).generate_state(4, dtype=np.uint64)
+    reference = _lanes_from(start, 4200)
+    here = np.empty(6, dtype=np.uint64)
+    onward = np.empty(6, dtype=np.uint64)
+    for lanes in [*range(12), 255, 256, 1023, 1024, 1025, 4000, 4001]:
+        streams.at_lane(table, start, lanes, here)
+        assert _lanes_from(here, 16) == reference[lanes : lanes + 16], lanes
+        streams.at_lane(table, here, 7, onward)  # from wherever `here` stands, spare or not
+        assert _lanes_from(onward, 8) == reference[lanes + 7 : lanes + 15], lanes
+
+
+def test_jump_table_matches_published_jump_polynomials() -> None:
+    """Blackman & Vigna's reference code for xoshiro256** (the jump() and long_jump() functions,
+    constants recalled from memory) advances the state by 2¹²⁸ and 2¹⁹² outputs by XOR-ing the
+    states at the set bits of a jump polynomial; the tabulated powers J^(2¹²⁸), J^(2¹⁹²) must do
+    the same."""
+    from service.stats import streams
+
+    jumps = {
+        128: [0x180EC6D33CFD0ABA, 0xD5A61266F0C9392C, 0xA9582618E03FC9AA, 0x39ABDC4529B1661C],
+        192: [0x76E15D3EFEFDCBBF, 0xC5004E441C522FB3, 0x77710069854EE241, 0x39109BB02ACBE635],
+    }
+    mask = (1 << 64) - 1
+    state = [int(v) for v in np.random.SeedSequence(8).generate_state(4, dtype=np.uint64)]
+    table = streams.jump_table(193)
+    for power, polynomial in jumps.items():
+        s, acc = list(state), [0, 0, 0, 0]
+        for word in polynomial:
+            for bit in range(64):
+                if word >> bit & 1:
+                    acc = [a ^ x for a, x in zip(acc, s, strict=True)]
+                t = (s[1] << 17) & mask  # one step of the generator, output aside
+                s[2] ^= s[0]
+                s[3] ^= s[1]
+                s[1] ^= s[2]
+                s[0] ^= s[3]
+                s[2] ^= t
+                s[3] = ((s[3] << 45) | (s[3] >> 19)) & mask
+        moved = np.array(state, dtype=np.uint64)
+        streams._apply(table[power], moved)
+        assert [int(v) for v in moved[:4]] == acc, power
+
+
+def test_rejected_lanes_are_counted() -> None:
+    """Lemire 2019 (ACM TOMACS 29:3): a lane x is rejected when the low word of x·n is below
+    2³² mod n. With n = 2¹⁷ − 1 (2³² mod n = 2¹⁵) rejections are common enough to count: the
+    kernel's count and its draws equal those of the reference generator above."""
+    n = 131_071
+    data = np.zeros((n, 1))
+    draws = kernels.SubjectDraws(12, data)
+    start = draws.position()
+    means, present, index = draws.buffers(2, keep_index=True)
+    misses = np.zeros(1, dtype=np.int64)
+    draws.draw_from(draws.position(), means, present, index, misses)
+    lanes = _lanes_from(start[0], 2 * n + 64)
+    threshold = (1 << 32) % n
+    accepted = [i for i, x in enumerate(lanes) if (x * n) & 0xFFFFFFFF >= threshold][: 2 * n]
+    assert misses[0] == accepted[-1] + 1 - 2 * n > 0
+    assert index.ravel().tolist() == [(lanes[i] * n) >> 32 for i in accepted]
+
+
+@pytest.mark.parametrize("n", [5, 64, 65, 150])
+def test_omission_sums_by_subject_ranges_equal_one_pass(n: int) -> None:
+    """Common practice (floating-point sums depend on their order): the jackknife-after-bootstrap
+    sums (Efron 1992 §3) added for a few subject ranges, as threads share them, equal the sums
+    over all subjects at once bit for bit."""
+    data = np.random.default_rng(n).normal(size=(n, 3))
+    _, present, _ = kernels.SubjectDraws(n, data).draw(300)
+    centred = np.random.default_rng(1).normal(size=300)
+    finite = np.arange(300) % 5 != 0
+    whole = np.zeros((3, n))
+    kernels.add_omission_sums(present, n, finite, centred, whole)
+    kernels.add_omission_sums(present, n, finite, centred[::-1].copy(), whole)
+    parts = np.zeros((3, n))
+    cuts = [0, 1, n // 3, n // 2 + 1, n]
+    for first, stop in zip(cuts[:-1], cuts[1:], strict=True):
+        kernels.add_omission_sums(present, n, finite, centred, parts, subjects=(first, stop))
+    for first, stop in zip(cuts[:-1], cuts[1:], strict=True):
+        kernels.add_omission_sums(present, n, finite, centred[::-1].copy(), parts,
+                                  subjects=(first, stop))
+    np.testing.assert_array_equal(parts, whole)

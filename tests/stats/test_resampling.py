@@ -1,6 +1,10 @@
 from __future__ import annotations
 
+import dataclasses
+import json
 import math
+import threading
+import time
 
 import numpy as np
 import pytest
@@ -12,8 +16,11 @@ from scipy import stats
 from scipy.special import ndtri
 
 from service.stats import intervals as iv
+from service.stats import kernels, waves
 from service.stats import resampling as rs
+from service.stats.deadlines import ComputeTimeExceeded
 from service.stats.ratio import theta_of_means
+from tests.stats import bootstrap_cases as bc
 
 FloatArray = NDArray[np.float64]
 
@@ -25,12 +32,14 @@ def _study(n: int, seed: int, baseline: bool = True) -> FloatArray:
 
 
 def _run(data: FloatArray, replicates: int, seed: int, level: float = 0.9,
-         strata: NDArray[np.int64] | None = None, chunk_size: int | None = None) -> rs.Bootstrap:
+         strata: NDArray[np.int64] | None = None, chunk_size: int | None = None,
+         threads: int | None = None, deadline: float | None = None) -> rs.Bootstrap:
     theta = float(theta_of_means(data.mean(axis=0)))
     jack = rs.leave_one_out_values(data, theta_of_means)
     return rs.bootstrap(data, theta_of_means, theta_hat=theta, jackknife_values=jack,
                         replicates=replicates, seed=seed, confidence_level=level,
-                        strata=strata, chunk_size=chunk_size)
+                        strata=strata, chunk_size=chunk_size, threads=threads,
+                        deadline=deadline)
 
 
 def test_jackknife_matches_astropy() -> None:
@@ -178,3 +187,119 @@ def test_jackknife_after_bootstrap_error_of_mean_se() -> None:
     expected = out.standard_error / math.sqrt(2 * 39)
     assert expected / 3 < se_se < 3 * expected
     assert out.monte_carlo.min_replicates_omitting_subject > 20_000 * 0.3
+
+
+# The pinned outputs: every case with 1, 2, 3 and 7 threads, at several chunk sizes.
+_CHUNKS = [None, 7, 1000, 1]
+
+
+def _chunk_for(number: int, case: bc.Case) -> int | None:
+    chunk = _CHUNKS[number % len(_CHUNKS)]
+    return 13 if chunk == 1 and case.replicates > 5000 else chunk
+
+
+@pytest.mark.parametrize("number", range(len(bc.CASES)), ids=[c.name for c in bc.CASES])
+def test_archived_outputs_reproduce_on_any_number_of_threads(
+    number: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Source: the outputs of the one-thread engine of commit 57d5843, pinned in
+    bootstrap_outputs.json (SHA-256 of θ* in replicate order and of the jackknife-after-bootstrap
+    omission sums, and every number of the result), so that archived records still reproduce.
+    Any number of threads and any chunk size must give them bit for bit; the threads are used
+    even for small cases here."""
+    monkeypatch.setattr(waves, "MIN_BLOCK_DRAWS", 1)
+    stored = json.loads(bc.OUTPUTS.read_text())
+    case = bc.CASES[number]
+    for offset, threads in enumerate((1, 2, 3, 7)):
+        chunk = _chunk_for(number + offset, case)
+        pinned, _ = bc.run_case(case, chunk_size=chunk, threads=threads)
+        assert json.loads(json.dumps(pinned)) == stored[case.name], (threads, chunk)
+
+
+def test_archived_outputs_reproduce_with_default_threads() -> None:
+    """Source: bootstrap_outputs.json (the one-thread engine of commit 57d5843), with the default
+    thread count (every core this process may use) and default chunks."""
+    stored = json.loads(bc.OUTPUTS.read_text())
+    for case in bc.CASES:
+        pinned, _ = bc.run_case(case)
+        assert json.loads(json.dumps(pinned)) == stored[case.name], case.name
+
+
+def _assert_identical(one: rs.Bootstrap, other: rs.Bootstrap) -> None:
+    """Every field equal, the replicate values bit for bit and the Monte-Carlo errors included."""
+    np.testing.assert_array_equal(one.distribution, other.distribution)
+    for field in dataclasses.fields(rs.Bootstrap):
+        if field.name != "distribution":
+            assert getattr(one, field.name) == getattr(other, field.name), field.name
+
+
+def _rejected_lanes(data: FloatArray, seed: int, replicates: int) -> int:
+    draws = kernels.SubjectDraws(seed, data)
+    means, present, index = draws.buffers(replicates)
+    misses = np.zeros(1, dtype=np.int64)
+    draws.draw_from(draws.position(), means, present, index, misses)
+    return int(misses[0])
+
+
+@settings(max_examples=12, deadline=None)
+@given(threads=st.sampled_from([2, 3, 7]), chunk=st.integers(min_value=1, max_value=40),
+       seed=st.integers(0, 2**32 - 1))
+def test_blocks_after_rejected_lanes_start_in_the_right_place(
+    threads: int, chunk: int, seed: int
+) -> None:
+    """Common practice (a parallel run must equal the serial one, bit for bit): with 2¹⁷ − 1
+    subjects, 2³² mod n = 2¹⁵, so Lemire's method (Lemire 2019) rejects about one lane per
+    replicate; blocks of a few replicates on several threads must still give the replicates and
+    the omission sums of one thread."""
+    n = 131_071
+    data = np.random.default_rng(seed % 1000).normal([52.0, 50.0, 20.0], 6.0, size=(n, 3))
+    assert _rejected_lanes(data, seed, 30) > 0
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(waves, "MIN_BLOCK_DRAWS", 1)
+        one = _run(data, 30, seed, threads=1)
+        many = _run(data, 30, seed, threads=threads, chunk_size=chunk)
+    _assert_identical(one, many)
+
+
+@settings(max_examples=15, deadline=None)
+@given(threads=st.sampled_from([2, 3, 7]), chunk=st.integers(min_value=1, max_value=600),
+       seed=st.integers(0, 2**32 - 1), n=st.integers(min_value=2, max_value=150),
+       strata=st.integers(min_value=0, max_value=4))
+def test_thread_count_changes_no_number(
+    threads: int, chunk: int, seed: int, n: int, strata: int
+) -> None:
+    """Common practice (as for the chunk size, scipy.stats.bootstrap's batch invariance): the
+    number of threads only divides the work and must not change any result, bit for bit,
+    stratified or not."""
+    data = _study(n, seed % 1000)
+    codes = None if strata == 0 else np.arange(n, dtype=np.int64) % (strata + 1)
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(waves, "MIN_BLOCK_DRAWS", 1)
+        one = _run(data, 1500, seed, strata=codes, threads=1)
+        many = _run(data, 1500, seed, strata=codes, threads=threads, chunk_size=chunk)
+    _assert_identical(one, many)
+
+
+def test_deadline_stops_every_thread() -> None:
+    """Common practice (a compute-time cap, service/stats/deadlines.py): a bootstrap that would
+    run for many seconds on two threads stops soon after its deadline, raises
+    ComputeTimeExceeded after whole waves, and leaves no drawing thread behind."""
+    data = _study(200, 4)
+    started = time.monotonic()
+    with pytest.raises(ComputeTimeExceeded) as stopped:
+        _run(data, 20_000_000, 1, threads=2, deadline=started + 0.3)
+    late = time.monotonic() - (started + 0.3)
+    assert 0 < stopped.value.done < 20_000_000
+    assert stopped.value.done % (2 * rs.default_chunk_size(200)) == 0
+    assert late < 5.0  # generous on a shared machine: a wave lasts milliseconds
+    assert not [t for t in threading.enumerate() if t.name.startswith("bootstrap")]
+    with pytest.raises(ComputeTimeExceeded) as at_once:
+        _run(data, 1_000_000, 1, threads=2, deadline=time.monotonic() - 1.0)
+    assert at_once.value.done == 0
+
+
+@pytest.mark.parametrize("threads", [0, -2, 1.5, True])
+def test_threads_must_be_a_positive_integer(threads: object) -> None:
+    """Common practice (validate at the edge, name the field): a bad thread count is refused."""
+    with pytest.raises(ValueError, match="threads"):
+        _run(_study(10, 1), 100, 1, threads=threads)  # type: ignore[arg-type]
