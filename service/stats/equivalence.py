@@ -19,8 +19,8 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import stats as sps
 
+from service.stats import distributions as dist
 from service.stats.crossover_fit import fit_absorbed
 from service.stats.diagnostics import Diagnostic
 from service.stats.observations import CodedObservations, code_observations
@@ -224,13 +224,13 @@ def interval_and_tost(
 
     ``standard_error`` must be > 0 and ``df`` > 0 (an integer, or Welch–Satterthwaite's)."""
     alpha = 1.0 - confidence_level
-    t_crit = float(sps.t.ppf(1.0 - alpha / 2.0, df))
+    t_crit = float(dist.t_ppf(1.0 - alpha / 2.0, df))
     lower = exp_percent(estimate - t_crit * standard_error)
     upper = exp_percent(estimate + t_crit * standard_error)
     # Two one-sided tests, Schuirmann 1987: H0 ratio <= lower, H0 ratio >= upper.
     t_lower = (estimate - math.log(limits_percent[0] / 100.0)) / standard_error
     t_upper = (estimate - math.log(limits_percent[1] / 100.0)) / standard_error
-    return lower, upper, float(sps.t.sf(t_lower, df)), float(sps.t.cdf(t_upper, df))
+    return lower, upper, float(dist.t_sf(t_lower, df)), float(dist.t_cdf(t_upper, df))
 
 
 def cv_percent(variance_log: float) -> float | None:
@@ -275,7 +275,7 @@ def _sequence_effect(
                                       "vary within sequences: no sequence effect"))
         return None, None, df_num, df_den
     f = (ss_seq / df_num) / (ss_subj / df_den)
-    return finite_or_none(f), finite_or_none(float(sps.f.sf(f, df_num, df_den))), df_num, df_den
+    return finite_or_none(f), finite_or_none(float(dist.f_sf(f, df_num, df_den))), df_num, df_den
 
 
 def check_limits(limits_percent: tuple[float, float]) -> tuple[float, float]:

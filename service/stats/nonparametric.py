@@ -21,8 +21,8 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import stats as sps
 
+from service.stats import distributions as dist
 from service.stats.diagnostics import Diagnostic
 
 METHOD = (
@@ -87,10 +87,10 @@ def hodges_lehmann_shift(
         ties = np.unique(d, return_counts=True)[1].astype(np.float64)
         var = n * (n + 1) * (2 * n + 1) / 24.0 - float(np.sum(ties**3 - ties)) / 48.0
         sd = math.sqrt(var)
-        z = float(sps.norm.ppf(1.0 - alpha / 2.0))
+        z = float(dist.norm_ppf(1.0 - alpha / 2.0))
         # P(T+ ≤ k − 1) ≈ Φ((k − 1 + ½ − M/2)/sd) ≤ α/2, continuity-corrected normal approximation
         k = min(math.floor(m / 2.0 + 0.5 - z * sd), (m + 1) // 2)
-        achieved = (1.0 - 2.0 * float(sps.norm.cdf((k - 0.5 - m / 2.0) / sd))) if k >= 1 else None
+        achieved = (1.0 - 2.0 * float(dist.norm_cdf((k - 0.5 - m / 2.0) / sd))) if k >= 1 else None
         interval_method = "normal_signed_rank_tie_corrected"
     median_ranks = [(m + 1) // 2, m // 2 + 1]
     lower: float | None = None

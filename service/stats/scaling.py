@@ -20,8 +20,8 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import stats as sps
 
+from service.stats import distributions as dist
 from service.stats.diagnostics import Diagnostic
 from service.stats.equivalence import RatioAcceptance, judge_ratio_interval, round_percent
 
@@ -180,11 +180,11 @@ def reference_scaled_bound(
     d = np.asarray(delta_hat, dtype=np.float64)
     v = np.asarray(s2_delta, dtype=np.float64)
     s2 = np.asarray(s2_wr, dtype=np.float64)
-    t = float(sps.t.ppf(level, df_delta))
+    t = float(dist.t_ppf(level, df_delta))
     x = d * d - v                                          # bias-corrected δ², FDA 2011
     x_u = (np.abs(d) + t * np.sqrt(v)) ** 2                # max(|δ̂ ± t·s_δ|)², FDA 2011
     y = -theta * s2
-    y_u = -theta * s2 * df_wr / float(sps.chi2.ppf(level, df_wr))  # see the docstring
+    y_u = -theta * s2 * df_wr / float(dist.chi2_ppf(level, df_wr))  # see the docstring
     estimate = x + y
     return estimate, estimate + np.sqrt((x_u - x) ** 2 + (y_u - y) ** 2)
 
