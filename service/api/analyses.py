@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-import time
 from collections.abc import Mapping
+from functools import partial
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Path, Query, Request
@@ -12,18 +12,17 @@ from starlette.responses import JSONResponse, Response
 
 from service.api.access import Caller, require
 from service.api.bodies import body_kind, read_body
-from service.api.limits import check_work, idempotency_key, request_fingerprint, time_exceeded
+from service.api.limits import idempotency_key, request_fingerprint
 from service.api.problems import ProblemError, problem_responses
 from service.api.schemas import AnalysisPage, AnalysisRecord
 from service.api.settings import ServiceSettings
-from service.archive.store import Archive, IdempotencyConflict
+from service.api.submissions import analyse_and_archive
+from service.archive.signatures import list_signatures
+from service.archive.store import Archive, IdempotencyConflict, StoredRecord
 from service.intake.csvinput import SETTING_FIELDS
 from service.intake.problems import InvalidRequest, Problem
-from service.intake.reading import BodyKind, read_request
-from service.records.building import build_record
 from service.report.bundles import build_bundle
 from service.report.rendering import render_report
-from service.stats.deadlines import ComputeTimeExceeded
 
 # The report is self-contained (inline CSS and SVG, no script): forbid everything else.
 REPORT_SECURITY_POLICY = (
@@ -43,7 +42,8 @@ def archive_of(request: Request) -> Archive:
 
 ArchiveDep = Annotated[Archive, Depends(archive_of)]
 AnalysisId = Annotated[str, Path(description="archive identifier of the analysis")]
-Reader = Annotated[Caller, Depends(require("read"))]
+# GET endpoints also take a browser session cookie (signed in at /login); POSTs take Bearer only.
+Reader = Annotated[Caller, Depends(require("read", sessions=True))]
 Submitter = Annotated[Caller, Depends(require("submit"))]
 AUTH_PROBLEMS = (401, 403)
 
@@ -100,8 +100,8 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         # Parsing, resampling and the archive write are blocking: keep them off the event loop.
         try:
             stored, replayed = await run_in_threadpool(
-                _analyse_and_archive, archive, settings, kind, body, query,
-                caller.submitter, key, fingerprint,
+                partial(analyse_and_archive, archive, settings, kind, body, query,
+                        caller.submitter, idempotency_key=key, fingerprint=fingerprint)
             )
         except IdempotencyConflict as exc:
             raise ProblemError(
@@ -110,10 +110,7 @@ def build_router(settings: ServiceSettings) -> APIRouter:
                 "Content-Type or query differ); use a new key for a new request",
                 [(["header", "idempotency-key"], f"already names record {exc.record_id}")],
             ) from None
-        headers = {"Location": f"/v1/analyses/{stored['id']}"}
-        if replayed:
-            headers["Idempotency-Replayed"] = "true"
-        return JSONResponse(stored, status_code=201, headers=headers)
+        return created_response(stored, replayed)
 
     @router.get(
         "",
@@ -150,17 +147,19 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         "/{analysis_id}/report",
         response_class=Response,
         summary="The HTML audit report of an analysis",
-        description="Rendered from the archived record on every request; the record is "
-        "immutable, so the bytes are identical each time.",
+        description="Rendered from the archived record and its signatures on every request; "
+        "the record and its signatures are immutable, so the bytes are identical each time "
+        "until a new signature is given.",
         responses={
             200: {"content": {"text/html": {"schema": {"type": "string"}}}},
             **problem_responses(*AUTH_PROBLEMS, 404),
         },
     )
     def get_report(analysis_id: AnalysisId, archive: ArchiveDep, _caller: Reader) -> Response:
-        # Rendered from the stored record on each request: the record text is immutable and
-        # render_report is a pure function of it, so the bytes are the same every time.
-        html = render_report(stored_record(archive, analysis_id))
+        # Rendered from the stored record and signatures on each request: both are immutable
+        # and render_report is a pure function of them, so the bytes are the same every time.
+        record = stored_record(archive, analysis_id)
+        html = render_report(record, list_signatures(archive, record["id"]))
         return Response(
             html,
             media_type="text/html; charset=utf-8",
@@ -170,7 +169,8 @@ def build_router(settings: ServiceSettings) -> APIRouter:
     @router.get(
         "/{analysis_id}/bundle",
         response_class=Response,
-        summary="A zip of inputs.json, record.json, report.html and a manifest of their hashes",
+        summary="A zip of inputs.json, record.json, report.html, signatures.json and a manifest "
+        "of their hashes",
         responses={
             200: {"content": {"application/zip": {"schema": {"type": "string"}}}},
             **problem_responses(*AUTH_PROBLEMS, 404),
@@ -178,7 +178,8 @@ def build_router(settings: ServiceSettings) -> APIRouter:
     )
     def get_bundle(analysis_id: AnalysisId, archive: ArchiveDep, _caller: Reader) -> Response:
         record = stored_record(archive, analysis_id)
-        bundle = build_bundle(record, render_report(record))
+        given = list_signatures(archive, record["id"])
+        bundle = build_bundle(record, render_report(record, given), given)
         return Response(
             bundle,
             media_type="application/zip",
@@ -190,35 +191,16 @@ def build_router(settings: ServiceSettings) -> APIRouter:
     return router
 
 
-def _analyse_and_archive(
-    archive: Archive,
-    settings: ServiceSettings,
-    kind: BodyKind,
-    body: bytes,
-    query: Mapping[str, str],
-    submitter: str,
-    key: str | None,
-    fingerprint: str,
-) -> tuple[dict[str, Any], bool]:
-    if key is not None:
-        # A retry is answered from the archive before any parsing or computing.
-        earlier = archive.find_idempotent(
-            submitter=submitter, idempotency_key=key, request_sha256=fingerprint
-        )
-        if earlier is not None:
-            return earlier, True
-    inputs = read_request(kind, body, query, max_records=settings.max_records)
-    check_work(inputs, settings.max_work)
-    deadline = time.monotonic() + settings.max_compute_seconds
-    try:
-        record = build_record(inputs, deadline=deadline)
-    except ComputeTimeExceeded as exc:
-        raise time_exceeded(exc, settings.max_compute_seconds) from None
-    if key is None:
-        return archive.insert(record, submitter=submitter), False
-    return archive.insert_once(
-        record, submitter=submitter, idempotency_key=key, request_sha256=fingerprint
-    )
+def created_response(stored: Mapping[str, Any], replayed: bool) -> Response:
+    """201 with the archived record: the JSON text the archive made from its stored columns
+    (StoredRecord.json_text, the same content JSONResponse would write), not a second encoding."""
+    headers = {"Location": f"/v1/analyses/{stored['id']}"}
+    if replayed:
+        headers["Idempotency-Replayed"] = "true"
+    if isinstance(stored, StoredRecord):
+        return Response(stored.json_text, status_code=201, headers=headers,
+                        media_type="application/json")
+    return JSONResponse(stored, status_code=201, headers=headers)
 
 
 def _single_query_values(request: Request) -> dict[str, str]:

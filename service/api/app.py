@@ -4,19 +4,26 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from datetime import UTC, datetime
 from typing import Any
 
 from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
-from starlette.types import ASGIApp, Message, Receive, Scope, Send
+from starlette.concurrency import run_in_threadpool
 
 from service import __version__
 from service.api.analyses import build_router
+from service.api.headers import SecurityHeadersMiddleware
 from service.api.integrity import build_integrity_router
+from service.api.pages import install_pages
+from service.api.planning import build_planning_router
 from service.api.problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
 from service.api.schemas import AnalysisRequest, Health
 from service.api.settings import ServiceSettings
+from service.api.shares import build_share_router
+from service.api.signatures import build_signatures_router
 from service.archive.store import Archive
+from service.records.warmup import warm_up
 
 DESCRIPTION = (
     "Post a crossover measurement table (JSON, or CSV with settings as query parameters); "
@@ -24,10 +31,14 @@ DESCRIPTION = (
     "and a zip bundle, all archived with the SHA-256 of the normalized inputs. Errors are RFC 9457 "
     "problem details.\n\n"
     "Every /v1 call carries `Authorization: Bearer KEY` (keys are made with `python -m service keys "
-    "create`; roles: read → GET endpoints; submit → also POST /v1/analyses and reproduction; admin → "
-    "everything, including the archive verification). Only while the archive holds no active key "
+    "create`; roles: read → GET endpoints; submit → also POST /v1/analyses and reproduction; "
+    "review → GET endpoints and signing records; admin → everything, including signing and the "
+    "archive verification). Only while the archive holds no active key "
     "and the service listens on a loopback address does it run open; records then name the "
-    "submitter \"unauthenticated\". /healthz needs no key."
+    "submitter \"unauthenticated\". /healthz needs no key.\n\n"
+    "In a browser, sign in at /login with a key: the GET endpoints then also take the session "
+    "cookie; the archive index is /, each record has a page at /analyses/{id}, and /upload "
+    "analyses a table from a form."
 )
 
 SECURITY_SCHEME = {
@@ -47,6 +58,10 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
+        if settings.warm_up:
+            # uvicorn says "startup complete" only after this: the first request is not the
+            # one that loads the compiled kernels.
+            await run_in_threadpool(warm_up)
         try:
             yield
         finally:
@@ -57,12 +72,20 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
         version=__version__,
         description=DESCRIPTION,
         lifespan=lifespan,
+        # /docs and /redoc are served from local files by service.api.pages.docs.
+        docs_url=None,
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.archive = archive
+    app.state.clock = utc_now
     install_problem_handlers(app)
     app.include_router(build_router(settings))
     app.include_router(build_integrity_router(settings))
+    app.include_router(build_planning_router(settings.max_planning_total))
+    app.include_router(build_share_router())
+    install_pages(app)
+    app.include_router(build_signatures_router())
 
     @app.get("/healthz", response_model=Health, tags=["service"], summary="Liveness")
     async def healthz() -> dict[str, str]:
@@ -74,7 +97,7 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
         return app.openapi_schema
 
     app.openapi = openapi  # type: ignore[method-assign]
-    app.add_middleware(NoSniffMiddleware)
+    app.add_middleware(SecurityHeadersMiddleware)
     return app
 
 
@@ -107,26 +130,5 @@ def _openapi_with_request_schema(app: FastAPI) -> dict[str, Any]:
     return schema
 
 
-class NoSniffMiddleware:
-    """Adds X-Content-Type-Options: nosniff to every response (browsers must not guess types)."""
-
-    def __init__(self, app: ASGIApp) -> None:
-        self.app = app
-
-    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] != "http":
-            await self.app(scope, receive, send)
-            return
-
-        async def send_with_header(message: Message) -> None:
-            if message["type"] == "http.response.start":
-                headers = [
-                    (name, value)
-                    for name, value in message.get("headers", [])
-                    if name.lower() != b"x-content-type-options"
-                ]
-                headers.append((b"x-content-type-options", b"nosniff"))
-                message = {**message, "headers": headers}
-            await send(message)
-
-        await self.app(scope, receive, send_with_header)
+def utc_now() -> datetime:
+    return datetime.now(UTC)

@@ -13,7 +13,7 @@ from service.api.analyses import AnalysisId, ArchiveDep, stored_record
 from service.api.limits import check_work, time_exceeded
 from service.api.problems import problem_responses
 from service.api.settings import ServiceSettings
-from service.archive.verification import verification_to_json, verify_rows
+from service.archive.signature_verification import archive_verification
 from service.records.reproduction import reproduce
 from service.stats.deadlines import ComputeTimeExceeded
 
@@ -27,14 +27,15 @@ def build_integrity_router(settings: ServiceSettings) -> APIRouter:
         "/archive/verification",
         summary="Walk the hash chain of the archive and report the first break (role admin)",
         description="Recomputes every inputs hash from the stored inputs and every record hash "
-        "and link. `valid` is false when any stored row was edited, removed or moved; "
-        "`first_break` names the earliest record affected and why.",
+        "and link, and every signature hash and link. `valid` is false when any stored row "
+        "was edited, removed or moved; `first_break` names the earliest record affected and "
+        "why, `first_signature_break` the earliest signature.",
         responses=problem_responses(*AUTH_PROBLEMS),
     )
     def verify_archive(
         archive: ArchiveDep, _caller: Annotated[Caller, Depends(require("admin"))]
     ) -> Response:
-        return JSONResponse(verification_to_json(verify_rows(archive.chain_rows())))
+        return JSONResponse(archive_verification(archive))
 
     @router.post(
         "/analyses/{analysis_id}/reproduction",
@@ -49,13 +50,19 @@ def build_integrity_router(settings: ServiceSettings) -> APIRouter:
         archive: ArchiveDep,
         _caller: Annotated[Caller, Depends(require("submit"))],
     ) -> Response:
-        record = stored_record(archive, analysis_id)
-        check_work(record["inputs"], settings.max_work)
-        deadline = time.monotonic() + settings.max_compute_seconds
-        try:
-            answer: dict[str, Any] = reproduce(record, deadline=deadline)
-        except ComputeTimeExceeded as exc:
-            raise time_exceeded(exc, settings.max_compute_seconds) from None
-        return JSONResponse(answer)
+        return JSONResponse(reproduce_stored(stored_record(archive, analysis_id), settings))
 
     return router
+
+
+def reproduce_stored(record: dict[str, Any], settings: ServiceSettings) -> dict[str, Any]:
+    """The reproduction of an archived record within the service's work and time caps (a 422
+    ProblemError above them). Blocking; also used by the record page's reproduction button."""
+    check_work(record["inputs"], settings.max_work)
+    deadline = time.monotonic() + settings.max_compute_seconds
+    try:
+        answer: dict[str, Any] = reproduce(record, deadline=deadline,
+                                                threads=settings.bootstrap_threads or None)
+    except ComputeTimeExceeded as exc:
+        raise time_exceeded(exc, settings.max_compute_seconds) from None
+    return answer

@@ -10,6 +10,7 @@ from starlette.requests import Request
 from service.api.problems import ProblemError
 from service.records.hashing import canonical_json, sha256_hex
 from service.stats.deadlines import ComputeTimeExceeded
+from service.stats.phases import PhaseTimeExceeded
 
 MAX_IDEMPOTENCY_KEY_LENGTH = 200
 # Metrics one profile upload adds to the analysis: auc_0_t, auc_0_inf and cmax (tmax is only
@@ -44,6 +45,14 @@ def check_work(inputs: Mapping[str, Any], max_work: int) -> None:
 
 
 def time_exceeded(exc: ComputeTimeExceeded, max_seconds: float) -> ProblemError:
+    if isinstance(exc, PhaseTimeExceeded):
+        return ProblemError(
+            422,
+            f"the analysis did not finish within this service's compute-time cap of "
+            f"{max_seconds:g} s (setting max_compute_seconds, BIOPARITY_MAX_COMPUTE_SECONDS); it "
+            f"{exc}. Send a smaller table or split it by metric; nothing was archived",
+            [(["body"], f"time ran out before {exc.phase}")],
+        )
     return ProblemError(
         422,
         f"the analysis did not finish within this service's compute-time cap of {max_seconds:g} s "

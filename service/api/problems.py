@@ -24,6 +24,7 @@ _TYPE_BY_STATUS = {
     403: "forbidden",
     404: "not-found",
     405: "method-not-allowed",
+    409: "conflict",
     413: "body-too-large",
     415: "unsupported-media-type",
     422: "invalid-request",

@@ -29,6 +29,24 @@ class ServiceSettings:
     max_compute_seconds  wall-clock cap on computing one result (the bootstrap stops; 422).
     require_keys     refuse every /v1 call while the archive holds no active API key (set by
                      `serve` on a non-loopback address, so revoking the last key never opens it).
+    max_planning_total  the largest total a sample-size search tries (BIOPARITY_MAX_PLANNING_TOTAL,
+                     default 10 000; a target not reached by then is a 422).
+    warm_up          run a tiny analysis at start-up so the compiled kernels are loaded before
+                     the service reports ready (BIOPARITY_WARM_UP, default true).
+    bootstrap_threads  cap on the threads one bootstrap uses (BIOPARITY_BOOTSTRAP_THREADS;
+                     default 0 = the cores this process may use).
+
+    Browser pages (service.api.pages); each field is read from BIOPARITY_ + its name in capitals:
+    session_idle_seconds      a browser session ends after this long without a request
+                              (BIOPARITY_SESSION_IDLE_SECONDS, default 7200 = 2 h).
+    session_absolute_seconds  and this long after sign-in, however busy
+                              (BIOPARITY_SESSION_ABSOLUTE_SECONDS, default 43200 = 12 h).
+    behind_https     the service is reached over HTTPS (a TLS proxy in front): cookies are marked
+                     Secure and take the __Host- prefix (BIOPARITY_BEHIND_HTTPS, default false).
+    sign_in_attempts         failed sign-ins allowed from one client address within ...
+    sign_in_window_seconds   ... this many seconds; further attempts get 429 until the oldest
+                             failure leaves the window (BIOPARITY_SIGN_IN_ATTEMPTS, default 10;
+                             BIOPARITY_SIGN_IN_WINDOW_SECONDS, default 600).
     """
 
     database_url: str = DEFAULT_DATABASE_URL
@@ -41,8 +59,23 @@ class ServiceSettings:
     max_work: int = 200_000_000
     max_compute_seconds: float = 120.0
     require_keys: bool = False
+    warm_up: bool = True
+    max_planning_total: int = 10_000
+    bootstrap_threads: int = 0
+    session_idle_seconds: int = 2 * 3600
+    session_absolute_seconds: int = 12 * 3600
+    behind_https: bool = False
+    sign_in_attempts: int = 10
+    sign_in_window_seconds: int = 600
 
     def __post_init__(self) -> None:
+        for name in ("session_idle_seconds", "session_absolute_seconds", "sign_in_attempts",
+                     "sign_in_window_seconds"):
+            if getattr(self, name) < 1:
+                raise ValueError(f"{name} must be at least 1, got {getattr(self, name)}")
+        if self.bootstrap_threads < 0:
+            raise ValueError(f"bootstrap_threads must be 0 (all cores) or more, got "
+                             f"{self.bootstrap_threads}")
         if self.max_work < 1:
             raise ValueError(f"max_work must be at least 1, got {self.max_work}")
         if not self.max_compute_seconds > 0:
@@ -111,6 +144,14 @@ _FIELD_KINDS: dict[str, type] = {
     "max_work": int,
     "max_compute_seconds": float,
     "require_keys": bool,
+    "warm_up": bool,
+    "max_planning_total": int,
+    "bootstrap_threads": int,
+    "session_idle_seconds": int,
+    "session_absolute_seconds": int,
+    "behind_https": bool,
+    "sign_in_attempts": int,
+    "sign_in_window_seconds": int,
 }
 
 _BOOLEANS = {"1": True, "true": True, "yes": True, "0": False, "false": False, "no": False}

@@ -31,6 +31,7 @@ class ApiKey:
     role: str
     created_at: str
     revoked_at: str | None
+    printed_name: str | None = None  # the signer's name as shown in signatures
 
 
 def generate_key() -> str:
@@ -52,17 +53,36 @@ def check_label(label: str) -> str:
     return cleaned
 
 
-def create_key(archive: Archive, *, label: str, role: str) -> str:
-    """Store a new key under `label` and return it (the only time it exists in clear)."""
+def check_printed_name(name: str) -> str:
+    cleaned = " ".join(name.split())
+    if not cleaned:
+        raise KeyProblem("the printed name must not be empty")
+    if len(cleaned) > MAX_LABEL_LENGTH:
+        raise KeyProblem(f"the printed name is longer than {MAX_LABEL_LENGTH} characters")
+    if not cleaned.isprintable():
+        raise KeyProblem("the printed name must hold printable characters only")
+    return cleaned
+
+
+def create_key(
+    archive: Archive, *, label: str, role: str, printed_name: str | None = None
+) -> str:
+    """Store a new key under `label` and return it (the only time it exists in clear).
+
+    A review key needs `printed_name`, the signer's name shown in every signature; the
+    command line asks one of admin keys too (an admin key without one may do all but sign)."""
     if role not in ROLES:
         raise KeyProblem(f"role must be one of {', '.join(ROLES)}, got {role!r}")
     label = check_label(label)
+    name = None if printed_name is None else check_printed_name(printed_name)
+    if role == "review" and name is None:
+        raise KeyProblem("a review key needs a printed name (--name)")
     key = generate_key()
     try:
         with archive.engine.begin() as conn:
             conn.execute(api_keys.insert().values(
                 label=label, role=role, key_sha256=key_sha256(key),
-                created_at=utc_timestamp(), revoked_at=None,
+                created_at=utc_timestamp(), revoked_at=None, printed_name=name,
             ))
     except IntegrityError:
         raise KeyProblem(f"a key labelled {label!r} exists already (labels are unique)") from None
@@ -70,7 +90,8 @@ def create_key(archive: Archive, *, label: str, role: str) -> str:
 
 
 def list_keys(archive: Archive) -> list[ApiKey]:
-    columns = (api_keys.c.label, api_keys.c.role, api_keys.c.created_at, api_keys.c.revoked_at)
+    columns = (api_keys.c.label, api_keys.c.role, api_keys.c.created_at, api_keys.c.revoked_at,
+               api_keys.c.printed_name)
     with archive.engine.connect() as conn:
         rows = conn.execute(select(*columns).order_by(api_keys.c.created_at, api_keys.c.label))
         return [ApiKey(**row._asdict()) for row in rows]
@@ -108,7 +129,7 @@ def find_key(archive: Archive, key: str) -> ApiKey | None:
     with archive.engine.connect() as conn:
         row = conn.execute(
             select(api_keys.c.label, api_keys.c.role, api_keys.c.created_at,
-                   api_keys.c.revoked_at, api_keys.c.key_sha256)
+                   api_keys.c.revoked_at, api_keys.c.key_sha256, api_keys.c.printed_name)
             .where(api_keys.c.key_sha256 == digest)
         ).first()
     if row is None or row.revoked_at is not None:
@@ -116,4 +137,4 @@ def find_key(archive: Archive, key: str) -> ApiKey | None:
     # The indexed lookup found it; a constant-time comparison keeps timing from saying more.
     if not hmac.compare_digest(row.key_sha256, digest):
         return None
-    return ApiKey(row.label, row.role, row.created_at, row.revoked_at)
+    return ApiKey(row.label, row.role, row.created_at, row.revoked_at, row.printed_name)

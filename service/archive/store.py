@@ -3,6 +3,7 @@ speaks SQL."""
 
 from __future__ import annotations
 
+import json
 import uuid
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
@@ -20,6 +21,7 @@ from sqlalchemy import (
     String,
     Table,
     Text,
+    UniqueConstraint,
     func,
     inspect,
     select,
@@ -31,7 +33,7 @@ from service.archive.chain import record_hash
 from service.archive.engines import ArchiveError as ArchiveError
 from service.archive.engines import make_engine, safe_url
 from service.archive.verification import verify_rows
-from service.records.hashing import canonical_json, load_canonical, sha256_hex
+from service.records.hashing import CanonicalText, canonical_json, load_canonical, sha256_hex
 
 SCHEMA_VERSION = 1
 
@@ -72,6 +74,7 @@ api_keys = Table(
     Column("key_sha256", String(64), nullable=False, unique=True),
     Column("created_at", String(32), nullable=False),
     Column("revoked_at", String(32), nullable=True),
+    Column("printed_name", String(200), nullable=True),  # shown in signatures; added later
 )
 
 # One row per (submitter, Idempotency-Key): the fingerprint of the first request and its record.
@@ -86,8 +89,67 @@ idempotency_keys = Table(
     PrimaryKeyConstraint("submitter", "idempotency_key"),
 )
 
-# Tables added after schema version 1 shipped; open() adds them to an older archive file.
-_ADDED_TABLES = (api_keys, idempotency_keys)
+# Browser sign-in (service.archive.sessions): the SHA-256 of each session id, never the id itself.
+browser_sessions = Table(
+    "browser_sessions",
+    metadata,
+    Column("session_sha256", String(64), primary_key=True),
+    Column("label", String(200), nullable=False, index=True),  # the key that signed in
+    Column("csrf_token", String(64), nullable=False),
+    Column("created_at", String(32), nullable=False),
+    Column("last_seen_at", String(32), nullable=False),
+)
+
+# Failed sign-ins per client address, kept for the length of the rate-limit window.
+sign_in_failures = Table(
+    "sign_in_failures",
+    metadata,
+    Column("seq", Integer, primary_key=True, autoincrement=True),
+    Column("client", String(64), nullable=False, index=True),
+    Column("failed_at", String(32), nullable=False),
+)
+
+# Links that show one report without sign-in (service.archive.shares); the token as SHA-256 only.
+share_links = Table(
+    "share_links",
+    metadata,
+    Column("id", String(32), primary_key=True),
+    Column("token_sha256", String(64), nullable=False, unique=True),
+    Column("record_id", String(64), nullable=False, index=True),
+    Column("label", String(200), nullable=True),  # the key that made it; null in open mode
+    Column("created_at", String(32), nullable=False),
+    Column("expires_at", String(32), nullable=False),
+    Column("ended_at", String(32), nullable=True),
+)
+
+# Signatures of records (service.archive.signatures): append-only rows in a hash chain of their
+# own, each link also covering the signed record's record_sha256. An older archive gets the
+# table empty (an empty chain), so it too needs no new schema version.
+signatures = Table(
+    "signatures",
+    metadata,
+    Column("seq", Integer, primary_key=True, autoincrement=True),
+    Column("id", String(64), nullable=False, unique=True),
+    Column("record_id", String(64), nullable=False, index=True),
+    Column("record_sha256", String(64), nullable=False),
+    Column("signer", String(200), nullable=False),
+    Column("printed_name", String(200), nullable=False),
+    Column("meaning", String(16), nullable=False),
+    Column("comment", Text, nullable=True),
+    Column("signed_at", String(32), nullable=False),
+    Column("signature_sha256", String(64), nullable=False),
+    Column("previous_signature_sha256", String(64), nullable=True),
+    UniqueConstraint("record_id", "signer", "meaning"),
+    sqlite_autoincrement=True,
+)
+
+# Tables added after schema version 1 shipped; open() adds them to an older archive file. They
+# hold no chained data, so adding them needs no new schema version.
+_ADDED_TABLES = (api_keys, idempotency_keys, browser_sessions, sign_in_failures, share_links,
+                 signatures)
+
+# Nullable columns added to tables after schema version 1 shipped; create() and open() add them.
+_ADDED_COLUMNS = ((api_keys, "printed_name"),)
 
 
 class IdempotencyConflict(Exception):
@@ -122,6 +184,7 @@ class Archive:
         try:
             with archive._engine.connect() as conn, _append_lock(conn):
                 metadata.create_all(conn)
+                _add_missing_columns(conn)
                 versions = conn.execute(select(schema_version.c.version)).scalars().all()
                 if not versions:
                     conn.execute(schema_version.insert().values(version=SCHEMA_VERSION))
@@ -146,9 +209,10 @@ class Archive:
                     raise ArchiveError(f"no bioparity archive at {safe_url(url)}")
                 versions = conn.execute(select(schema_version.c.version)).scalars().all()
             _check_version(versions)
-            if not {t.name for t in _ADDED_TABLES} <= tables:
+            if not {t.name for t in _ADDED_TABLES} <= tables or _columns_missing(archive._engine):
                 with archive._engine.connect() as conn, _append_lock(conn):
                     metadata.create_all(conn, tables=list(_ADDED_TABLES))
+                    _add_missing_columns(conn)
         except SQLAlchemyError as exc:
             archive.close()
             raise ArchiveError(f"cannot open the archive at {safe_url(url)}: {exc}") from exc
@@ -165,9 +229,16 @@ class Archive:
         """For the few modules that keep their own tables here (service.archive.keys)."""
         return self._engine
 
+    @contextmanager
+    def appending(self) -> Iterator[Connection]:
+        """A write transaction that holds the archive-wide append lock until it commits (for
+        the other chain of the archive, service.archive.signatures)."""
+        with self._engine.connect() as conn, _append_lock(conn):
+            yield conn
+
     def insert(
         self, record: Mapping[str, Any], submitter: str = "unauthenticated"
-    ) -> dict[str, Any]:
+    ) -> StoredRecord:
         """Append `record` ({"inputs_sha256", "inputs", "result"}) and return it as stored."""
         texts = _record_texts(record)
         with self._engine.connect() as conn, _append_lock(conn):
@@ -181,7 +252,7 @@ class Archive:
         submitter: str,
         idempotency_key: str,
         request_sha256: str,
-    ) -> tuple[dict[str, Any], bool]:
+    ) -> tuple[StoredRecord, bool]:
         """Append `record` unless `submitter` already used `idempotency_key`: then return the
         record of that first request and True (raise IdempotencyConflict if its fingerprint
         differs). The check and the append share the append lock, so two concurrent requests
@@ -206,7 +277,7 @@ class Archive:
 
     def find_idempotent(
         self, *, submitter: str, idempotency_key: str, request_sha256: str
-    ) -> dict[str, Any] | None:
+    ) -> StoredRecord | None:
         """The record first archived under this key, if any (IdempotencyConflict if the
         request differs); a cheap read before any computing."""
         with self._engine.connect() as conn, conn.begin():
@@ -260,32 +331,45 @@ _RECORD_COLUMNS = (
 )
 
 
-def _to_record(row: Mapping[str, Any]) -> dict[str, Any]:
-    return {
-        "id": row["id"],
-        "created_at": row["created_at"],
-        "inputs_sha256": row["inputs_sha256"],
-        "inputs": load_canonical(row["inputs"]),
-        "result": load_canonical(row["result"]),
-        "submitter": row["submitter"],
-        "record_sha256": row["record_sha256"],
-        "previous_record_sha256": row["previous_record_sha256"],
+class StoredRecord(dict[str, Any]):
+    """A record as archived, read back from its stored texts; `json_text` is the same record as
+    JSON (keys in this order, inputs and result as their stored RFC 8785 texts), made without
+    serialising them again."""
+
+    def __init__(self, fields: Mapping[str, Any], json_text: str) -> None:
+        super().__init__(fields)
+        self.json_text = json_text
+
+
+_RECORD_KEYS = ("id", "created_at", "inputs_sha256", "inputs", "result", "submitter",
+                "record_sha256", "previous_record_sha256")
+_TEXT_COLUMNS = ("inputs", "result")  # canonical JSON text
+
+
+def _to_record(row: Mapping[str, Any]) -> StoredRecord:
+    fields = {
+        key: load_canonical(row[key]) if key in _TEXT_COLUMNS else row[key] for key in _RECORD_KEYS
     }
+    members = (
+        f'"{key}":{row[key] if key in _TEXT_COLUMNS else json.dumps(row[key], ensure_ascii=False)}'
+        for key in _RECORD_KEYS
+    )
+    return StoredRecord(fields, "{" + ",".join(members) + "}")
 
 
 def _record_texts(record: Mapping[str, Any]) -> dict[str, Any]:
     inputs_text = canonical_json(record["inputs"])
     if sha256_hex(inputs_text) != record["inputs_sha256"]:
         raise ValueError("inputs_sha256 does not match the canonical form of inputs")
-    result_text = canonical_json(record["result"])
-    # Re-read from the canonical text so the stored and the returned record are one object.
-    result = load_canonical(result_text)
+    result_text = canonical_json(record["result"]).decode("utf-8")
     return {
         "inputs_sha256": record["inputs_sha256"],
         "inputs": inputs_text.decode("utf-8"),
-        "result_text": result_text.decode("utf-8"),
-        "result": result,
-        "engine": canonical_json(result.get("engine", {})).decode("utf-8"),
+        "result_text": result_text,
+        # The chain hash embeds the text as it is: it is the text verification reads back, and
+        # canonical_json(load_canonical(text)) == text.
+        "result": CanonicalText(result_text),
+        "engine": canonical_json(record["result"].get("engine", {})).decode("utf-8"),
     }
 
 
@@ -326,7 +410,7 @@ def _idempotent_row(conn: Connection, submitter: str, key: str) -> Mapping[str, 
     return None if row is None else row._asdict()
 
 
-def _replay(conn: Connection, earlier: Mapping[str, Any], request_sha256: str) -> dict[str, Any]:
+def _replay(conn: Connection, earlier: Mapping[str, Any], request_sha256: str) -> StoredRecord:
     if earlier["request_sha256"] != request_sha256:
         raise IdempotencyConflict(earlier["record_id"])
     row = conn.execute(
@@ -335,6 +419,22 @@ def _replay(conn: Connection, earlier: Mapping[str, Any], request_sha256: str) -
     if row is None:
         raise ArchiveError(f"record {earlier['record_id']} of an idempotency key is missing")
     return _to_record(row._asdict())
+
+
+def _columns_missing(engine: Engine) -> bool:
+    with engine.connect() as conn:
+        return any(
+            name not in {c["name"] for c in inspect(conn).get_columns(table.name)}
+            for table, name in _ADDED_COLUMNS
+        )
+
+
+def _add_missing_columns(conn: Connection) -> None:
+    """ALTER TABLE ... ADD COLUMN for each column of _ADDED_COLUMNS an older archive lacks."""
+    for table, name in _ADDED_COLUMNS:
+        if name not in {c["name"] for c in inspect(conn).get_columns(table.name)}:
+            kind = table.c[name].type.compile(dialect=conn.dialect)
+            conn.execute(text(f"ALTER TABLE {table.name} ADD COLUMN {name} {kind}"))
 
 
 @contextmanager

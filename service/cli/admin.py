@@ -10,7 +10,7 @@ from service.api.settings import database_url_from_argument
 from service.archive.keys import KeyProblem, active_key_count, create_key
 from service.archive.keys import list_keys as stored_keys
 from service.archive.keys import revoke_key as revoke_stored_key
-from service.archive.roles import is_loopback
+from service.archive.roles import NAMED_ROLES, is_loopback
 from service.archive.store import Archive, ArchiveError
 
 EXIT_BROKEN = 1
@@ -18,6 +18,11 @@ EXIT_INVALID = 2
 
 
 def run_keys(args: argparse.Namespace) -> int:
+    named = args.keys_command == "create" and args.role in NAMED_ROLES
+    if named and not (args.printed_name or "").strip():
+        print(f"error: a key of role {args.role!r} needs --name \"Printed Name\", shown in every "
+              "signature", file=sys.stderr)
+        return EXIT_INVALID
     url = database_url_from_argument(args.db)
     try:
         # create may start a new archive; list and revoke need an existing one.
@@ -27,14 +32,16 @@ def run_keys(args: argparse.Namespace) -> int:
         return EXIT_INVALID
     try:
         if args.keys_command == "create":
-            key = create_key(store, label=args.label, role=args.role)
+            key = create_key(store, label=args.label, role=args.role,
+                             printed_name=args.printed_name)
             print(f"created key {args.label.strip()!r} with role {args.role!r}; it is shown only "
                   "this once, store it now:")
             print(key)
         elif args.keys_command == "list":
             for item in stored_keys(store):
                 state = f"revoked {item.revoked_at}" if item.revoked_at else "active"
-                print(f"{item.label}\t{item.role}\tcreated {item.created_at}\t{state}")
+                name = f"\t{item.printed_name}" if item.printed_name else ""
+                print(f"{item.label}\t{item.role}\tcreated {item.created_at}\t{state}{name}")
         else:
             revoked = revoke_stored_key(store, args.label)
             print(f"revoked key {revoked.label!r} at {revoked.revoked_at}")
@@ -47,7 +54,7 @@ def run_keys(args: argparse.Namespace) -> int:
 
 
 def run_archive(args: argparse.Namespace) -> int:
-    from service.archive.verification import verification_to_json, verify_rows
+    from service.archive.signature_verification import archive_verification
 
     try:
         store = Archive.open(database_url_from_argument(args.db))
@@ -55,7 +62,7 @@ def run_archive(args: argparse.Namespace) -> int:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_INVALID
     try:
-        report = verification_to_json(verify_rows(store.chain_rows()))
+        report = archive_verification(store)
     finally:
         store.close()
     print(json.dumps(report, indent=2, sort_keys=True, ensure_ascii=False))
@@ -81,5 +88,5 @@ def access_at_start(host: str, database_url: str) -> tuple[bool, str]:
     return False, (
         f"error: refusing to serve on {host}, which is not a loopback address, while the archive "
         "holds no active API key. Create one first: bioparity keys create --db URL "
-        "--role admin --label NAME (or serve on 127.0.0.1)"
+        "--role admin --label NAME --name \"PRINTED NAME\" (or serve on 127.0.0.1)"
     )

@@ -10,6 +10,7 @@ import argparse
 
 from service import __version__
 from service.archive.roles import ROLES
+from service.cli.plan import add_plan_command
 from service.intake.csvinput import SETTING_FIELDS
 
 EXIT_INVALID = 2
@@ -58,12 +59,17 @@ def build_parser(prog: str = "bioparity") -> argparse.ArgumentParser:
     )
     serve.add_argument("--workers", type=int, default=1)
 
+    add_plan_command(commands)
+
     keys = commands.add_parser("keys", help="create, list and revoke API keys")
     actions = keys.add_subparsers(dest="keys_command", required=True)
     create = actions.add_parser("create", help="make a key; it is printed once, on the last line")
     create.add_argument("--db", required=True, help="SQLAlchemy URL or SQLite file path")
     create.add_argument("--role", required=True, choices=ROLES)
     create.add_argument("--label", required=True, help="unique name, archived as the submitter")
+    create.add_argument("--name", dest="printed_name", metavar="PRINTED_NAME",
+                        help="printed name of the person who holds the key, shown in every "
+                        "signature they give (required for review and admin)")
     listing = actions.add_parser("list", help="labels, roles and dates (never the keys)")
     listing.add_argument("--db", required=True)
     revoke = actions.add_parser("revoke", help="revoke the key with this label, at once")
@@ -93,6 +99,10 @@ def main(argv: list[str] | None = None, prog: str = "bioparity") -> int:
         from service.cli.serve import run_serve
 
         return run_serve(args.host, args.port, args.db, args.workers)
+    if args.command == "plan":
+        from service.cli.plan import run_plan
+
+        return run_plan(args)
     from service.cli.admin import run_archive, run_keys
 
     if args.command == "keys":

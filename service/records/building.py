@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 import platform
 from collections.abc import Mapping, Sequence
@@ -81,7 +82,8 @@ def compute_result(
         result["profiles"] = derived.profiles
         result["profile_rules"] = derived.rules
     found: list[str] = []
-    result = _replace_nonfinite(result, ("result",), found)
+    if not _all_finite(result):
+        result = _replace_nonfinite(result, ("result",), found)
     if found:
         result["warnings"].append(
             {
@@ -229,6 +231,16 @@ def _per_subject(table: MetricTable, ratio_json: Mapping[str, Any]) -> list[dict
             }
         )
     return rows
+
+
+def _all_finite(result: Any) -> bool:
+    # The C encoder refuses NaN and ±Infinity anywhere: one fast pass in the usual case, the
+    # path-naming walk below only when something did overflow.
+    try:
+        json.dumps(result, allow_nan=False)
+    except ValueError:
+        return False
+    return True
 
 
 def _replace_nonfinite(

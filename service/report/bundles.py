@@ -8,10 +8,11 @@ from __future__ import annotations
 
 import io
 import zipfile
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 from service.records.hashing import canonical_json, sha256_hex
+from service.report.signatures import ordered_signatures
 
 # 1980-01-01 00:00:00 is the earliest time a zip member can carry (MS-DOS date format).
 MEMBER_TIME = (1980, 1, 1, 0, 0, 0)
@@ -21,17 +22,23 @@ COMPRESSION_LEVEL = 9
 MANIFEST_NAME = "manifest.json"
 
 
-def build_bundle(record: Mapping[str, Any], report_html: bytes) -> bytes:
-    """Zip of inputs.json and record.json (RFC 8785 JSON), report.html and manifest.json.
+def build_bundle(
+    record: Mapping[str, Any], report_html: bytes, signatures: Sequence[Any] | None = None
+) -> bytes:
+    """Zip of inputs.json and record.json (RFC 8785 JSON), report.html and manifest.json; with
+    `signatures` (a list, maybe empty) also signatures.json, their RFC 8785 JSON in the order of
+    the report (UTC time, then hash).
 
     inputs.json is the canonical form of `inputs`, so its SHA-256 equals the record's
-    inputs_sha256; manifest.json lists the SHA-256 and size of each of the other three files.
+    inputs_sha256; manifest.json lists the SHA-256 and size of each of the other files.
     """
     files = {
         "inputs.json": canonical_json(record["inputs"]),
         "record.json": canonical_json(dict(record)),
         "report.html": report_html,
     }
+    if signatures is not None:
+        files["signatures.json"] = canonical_json([dict(s) for s in ordered_signatures(signatures)])
     manifest = {
         "record_id": record.get("id"),
         "inputs_sha256": record["inputs_sha256"],

@@ -271,6 +271,14 @@ def report_context(record: Mapping[str, Any]) -> dict[str, Any]:
             "average-bioequivalence limits on the ratio of geometric means: "
             f"[{fmt(abe_limits.get('lower'), 2)} %, {fmt(abe_limits.get('upper'), 2)} %] "
             f"at {level_percent(abe_settings.get('confidence_level'))}")
+    scaling = mapping(settings.get("scaling"))
+    if scaling and text(scaling.get("approach")) not in ("", "none"):
+        fixed.append(f"scaled limits ({words(text(scaling.get('approach')))}) for: "
+                     + ", ".join(str(m) for m in scaling.get("metrics") or []))
+    tmax_limits = mapping(settings.get("tmax_limits"))
+    if tmax_limits:
+        fixed.append(f"limits of the Tmax shift: [{fmt(tmax_limits.get('lower'), 3)}, "
+                     f"{fmt(tmax_limits.get('upper'), 3)}]")
     return {
         "title": text(study.get("title")) or "Untitled study",
         "analyte": text(study.get("analyte")) or DASH,

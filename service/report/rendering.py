@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import re
+from collections.abc import Sequence
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
@@ -18,6 +19,7 @@ from service.report.formatting import (
     sig,
     signed,
 )
+from service.report.signatures import signatures_view
 
 TEMPLATE_NAME = "report.html.j2"
 
@@ -48,12 +50,15 @@ def environment() -> jinja2.Environment:
     return env
 
 
-def render_report(record: dict[str, Any]) -> bytes:
-    """The HTML audit report for one record (UTF-8), byte-identical for the same record.
+def render_report(record: dict[str, Any], signatures: Sequence[Any] | None = None) -> bytes:
+    """The HTML audit report for one record (UTF-8), byte-identical for the same record and the
+    same signatures (in any order). With `signatures` (a list, maybe empty) the report has a
+    "Signatures" section; without (None) it has none, as for a record not archived.
 
     Raises ValueError naming the field when the record lacks a part the report needs.
     """
     context = report_context(record)
+    context["signatures"] = signatures_view(signatures, record)
     html = environment().get_template(TEMPLATE_NAME).render(**context)
     html = _BIDI_CONTROLS.sub(lambda match: f"[U+{ord(match.group()):04X}]", html)
     return html.encode("utf-8")

@@ -14,7 +14,7 @@ from typing import Any
 import pytest
 import rfc8785
 
-from service.api import analyses
+from service.api import submissions
 from service.records.building import build_record
 from tests.api.conftest import CSV_QUERY, ApiClient, csv_body, json_request, table_rows
 
@@ -70,7 +70,7 @@ def test_create_then_read_report_and_bundle(client: ApiClient) -> None:
     assert bundle.content == client.get(f"/v1/analyses/{record['id']}/bundle").content
     with zipfile.ZipFile(io.BytesIO(bundle.content)) as archive:
         assert sorted(archive.namelist()) == [
-            "inputs.json", "manifest.json", "record.json", "report.html"
+            "inputs.json", "manifest.json", "record.json", "report.html", "signatures.json"
         ]
         assert archive.read("report.html") == first.content
         assert json.loads(archive.read("record.json")) == record
@@ -105,7 +105,7 @@ def test_bundle_manifest_hashes(client: ApiClient) -> None:
     with zipfile.ZipFile(io.BytesIO(content)) as archive:
         manifest = json.loads(archive.read("manifest.json"))
         listed = {entry["name"]: entry for entry in manifest["files"]}
-        assert sorted(listed) == ["inputs.json", "record.json", "report.html"]
+        assert sorted(listed) == ["inputs.json", "record.json", "report.html", "signatures.json"]
         for name, entry in listed.items():
             data = archive.read(name)
             assert entry["sha256"] == hashlib.sha256(data).hexdigest()
@@ -216,7 +216,7 @@ def test_analysis_runs_off_the_event_loop(
         finished.set()
         return record
 
-    monkeypatch.setattr(analyses, "build_record", slow_build_record)
+    monkeypatch.setattr(submissions, "build_record", slow_build_record)
     pending = client.submit("POST", "/v1/analyses", json=json_request())
     assert entered.wait(30)
     assert client.get("/healthz").status_code == 200

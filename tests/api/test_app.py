@@ -61,3 +61,23 @@ def test_unusable_database_url_is_a_clear_error() -> None:
     (SQLAlchemy raises NoSuchModuleError, wrapped as ArchiveError)."""
     with pytest.raises(ArchiveError, match="nosuch://"):
         create_app(ServiceSettings(database_url="nosuch://somewhere"))
+
+
+def test_start_up_loads_the_compiled_kernels_before_the_first_request(tmp_path: Path) -> None:
+    """`serve` must not make the first request wait for compiled code (numba dispatchers gain a
+    signature once a loop is compiled or loaded from its cache, numba docs). Run in a fresh
+    process so nothing in this test session has loaded them already."""
+    script = (
+        "from fastapi.testclient import TestClient\n"
+        "from service.api.app import create_app\n"
+        "from service.api.settings import ServiceSettings\n"
+        "from service.stats import kernels\n"
+        f"app = create_app(ServiceSettings(database_url='sqlite:///{tmp_path / 'a.sqlite3'}'))\n"
+        "assert not kernels._draw_subjects.signatures\n"
+        "with TestClient(app):\n"
+        "    assert kernels._draw_subjects.signatures\n"
+        "print('warm')\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          cwd=ROOT, timeout=300)
+    assert done.returncode == 0 and "warm" in done.stdout, done.stderr

@@ -101,6 +101,7 @@ def test_start_up_decision(tmp_path: Path) -> None:
     may, message = access_at_start("127.0.0.1", url)
     assert may and "OPEN" in message and "unauthenticated" in message
     assert access_at_start("0.0.0.0", url)[0] is False
-    assert run("keys", "create", "--db", url, "--role", "admin", "--label", "ops").returncode == 0
+    assert run("keys", "create", "--db", url, "--role", "admin", "--label", "ops",
+               "--name", "Olga Operator").returncode == 0
     assert access_at_start("0.0.0.0", url) == (True, access_at_start("::", url)[1])
     assert access_at_start("0.0.0.0", url)[0] is True

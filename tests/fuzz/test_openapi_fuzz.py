@@ -47,13 +47,23 @@ OPERATIONS = (
     ("POST", "/v1/analyses/{analysis_id}/reproduction"),
     ("GET", "/v1/archive/verification"),
     ("GET", "/healthz"),
+    ("POST", "/v1/planning"),
+    ("POST", "/v1/analyses/{analysis_id}/planning"),
+    ("POST", "/v1/analyses/{analysis_id}/signatures"),
+    ("GET", "/v1/analyses/{analysis_id}/signatures"),
+    ("GET", "/v1/analyses/{analysis_id}/signatures/{signature_id}"),
+    ("POST", "/v1/analyses/{analysis_id}/share"),
 )
 # Inputs the schema constrains, so that a request can break it: GET /healthz takes none, and the
 # analysis id in a path is any string (an unknown one is a 404, fuzzed in the positive run).
-WITH_INPUT = (("POST", "/v1/analyses"), ("GET", "/v1/analyses"))
+WITH_INPUT = (("POST", "/v1/analyses"), ("GET", "/v1/analyses"), ("POST", "/v1/planning"),
+              ("POST", "/v1/analyses/{analysis_id}/signatures"),
+              ("POST", "/v1/analyses/{analysis_id}/share"))
 # The request model allows up to 1 000 000 replicates; the fuzzer would pick such values, and one
 # analysis then takes seconds. The cap changes run time only, not which code paths are reached.
 MAX_FUZZ_REPLICATES = 300
+# Likewise the planning model allows a million simulated studies; fewer reach the same code.
+MAX_FUZZ_SIMULATIONS = 2000
 RESPONSE_CHECKS = [
     not_a_server_error,
     status_code_conformance,
@@ -107,6 +117,10 @@ def target(tmp_path_factory: pytest.TempPathFactory) -> Iterator[FuzzTarget]:
 
 def _cap_replicates(case: Any) -> None:
     body = case.body
+    if isinstance(body, dict) and "design" in body and "records" not in body:  # a planning body
+        simulations = body.get("simulations", MAX_FUZZ_SIMULATIONS)
+        if type(simulations) is int:
+            body["simulations"] = min(simulations, MAX_FUZZ_SIMULATIONS)
     if isinstance(body, dict) and isinstance(body.get("settings"), dict):
         replicates = body["settings"].get("replicates")
         if isinstance(replicates, int) and not isinstance(replicates, bool):

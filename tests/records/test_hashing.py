@@ -4,10 +4,18 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
+import struct
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
 
 import pytest
+import rfc8785
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
-from service.records.hashing import canonical_json, inputs_sha256
+from service.records.hashing import CanonicalText, canonical_json, inputs_sha256, load_canonical
 
 
 def test_rfc8785_section_3_2_2_example() -> None:
@@ -80,9 +88,188 @@ def test_canonical_text_reads_back_to_the_same_bytes() -> None:
     """RFC 8785 §3.2.2.3 writes doubles from 2**53 up to 1e21 as plain digits (ECMAScript
     Number::toString); reading them back must give the doubles again, so re-canonicalizing is
     the identity. A genuine integer of 2**53 + 1 is not a double's canonical form and stays int."""
-    from service.records.hashing import load_canonical
-
     text = canonical_json({"a": 1e20, "b": -8.333333333333333e18, "c": 9007199254740992.0, "d": 3})
     assert text == b'{"a":100000000000000000000,"b":-8333333333333333000,"c":9007199254740992,"d":3}'
     assert canonical_json(load_canonical(text)) == text
     assert load_canonical(b"[9007199254740993]") == [9007199254740993]
+
+
+# Numbers where Python's repr() and ECMAScript's Number::toString part ways, or that RFC 8785 and
+# the rfc8785 package refuse: the thresholds of fixed and exponent notation on both sides, the
+# ".0" of integral doubles, -0, the end of the exact integers (2**53) and the non-finite values.
+HOSTILE_NUMBERS: list[Any] = [
+    0.0, -0.0, 1e21, -1e21, 1e-7, -1e-7, 5e-324, -5e-324, 1e20, 123456789012345680000.0,
+    999999999999999900000.0, 1e16, 1e15, 9007199254740992.0, 9007199254740994.0,
+    9007199254740991.0, float(2**55), 8.333333333333333e18, 0.1 + 0.2, 1e-4, -1e-4,
+    9.999999999999999e-05, 1e-5, 1.5e-9, 1e-6, 9.999999999999999e-07, 1e-10,
+    1.7976931348623157e308, 2.2250738585072014e-308, 5614.0, -107.0,
+    2**53, -(2**53), 2**53 - 1, -(2**53 - 1), 2**64, True, False,
+    float("nan"), float("inf"), float("-inf"),
+]
+# Characters that need care: controls (escaped as \b \f \n \r \t or \u00xx), DEL and
+# U+2028/U+2029 (not escaped), quote and backslash, U+E000..U+FFFF against characters above U+FFFF
+# (UTF-16 order), lone surrogates (refused), and the lone low surrogate the fast path uses to mark
+# the values it splices back.
+SPECIAL_CHARACTERS = [chr(c) for c in range(0x20)] + [
+    "\x7f", "\u2028", "\u2029", '"', "\\", "/", "\ue000", "\ufb33", "\uffff", "\U0001f600",
+    "\U00010000", "\U0010ffff", "\ud800", "\udc00", "\udfff", "é", "€",
+]
+
+
+def _double_of_bits(bits: int) -> float:
+    value: float = struct.unpack("<d", bits.to_bytes(8, "little"))[0]
+    return value
+
+
+characters = st.one_of(st.characters(), st.sampled_from(SPECIAL_CHARACTERS))
+strings = st.one_of(
+    st.text(characters, max_size=8),
+    st.integers(0, 9).map(lambda i: f"\udc00{i}"),  # the fast path's own marks, from outside
+)
+keys = st.one_of(strings, st.sampled_from(["\U0001f600", "\ufb33", "\ue000", "a", "\udc000"]))
+finite_doubles = st.integers(0, 2**64 - 1).map(_double_of_bits).filter(math.isfinite)
+scalars = st.one_of(
+    st.none(), st.booleans(), st.integers(-(2**60), 2**60), st.integers(-(2**53) - 2, 2**53 + 2),
+    st.floats(), finite_doubles, st.sampled_from(HOSTILE_NUMBERS), strings,
+)
+values = st.recursive(
+    scalars,
+    lambda inner: st.one_of(
+        st.lists(inner, max_size=5),
+        st.tuples(inner, inner),
+        st.dictionaries(keys, inner, max_size=5),
+        st.dictionaries(st.integers(0, 3), inner, min_size=1, max_size=2),  # keys must be str
+    ),
+    max_leaves=25,
+)
+
+
+def _outcome(serialise: Callable[[Any], bytes], value: Any) -> bytes | type[BaseException]:
+    try:
+        return bytes(serialise(value))
+    except Exception as exc:  # the error type is what is compared
+        return type(exc)
+
+
+@settings(max_examples=600, deadline=None)
+@given(values)
+def test_same_bytes_and_same_errors_as_the_rfc8785_package(value: Any) -> None:
+    """The rfc8785 package (a reference implementation of RFC 8785) is the oracle: for nested
+    dicts, lists, tuples and strings (controls, characters above U+FFFF, lone surrogates) and the
+    numbers above, canonical_json gives its bytes, or raises the same error type."""
+    assert _outcome(canonical_json, value) == _outcome(rfc8785.dumps, value)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.dictionaries(st.text(st.sampled_from(["a", "\ue000", "\uffff", "\U00010000", "\U0001f600"]),
+                               max_size=3), st.integers(0, 9), min_size=2, max_size=8))
+def test_key_order_as_the_rfc8785_package(value: dict[str, int]) -> None:
+    """RFC 8785 §3.2.3 orders members by UTF-16 code units, where characters above U+FFFF
+    (surrogate pairs) sort below U+E000..U+FFFF, unlike code-point order; the rfc8785 package is
+    the oracle."""
+    assert canonical_json(value) == rfc8785.dumps(value)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(finite_doubles, min_size=1, max_size=20))
+def test_random_doubles_as_the_rfc8785_package(doubles: list[float]) -> None:
+    """Doubles from uniformly random bit patterns (every exponent, subnormals, both signs),
+    alone, in lists and in objects, written as the rfc8785 package writes them (RFC 8785
+    section 3.2.2.3, ECMAScript Number::toString)."""
+    for shape in (doubles, {f"k{i}": d for i, d in enumerate(doubles)}, doubles[0]):
+        assert canonical_json(shape) == rfc8785.dumps(shape)
+
+
+@pytest.mark.parametrize("number", HOSTILE_NUMBERS, ids=repr)
+def test_hostile_numbers_as_the_rfc8785_package(number: Any) -> None:
+    """Each number alone, in a list and as an object member: the rfc8785 package's bytes, or its
+    error (IntegerDomainError beyond ±(2**53 - 1), I-JSON RFC 7493 §2.2; FloatDomainError for NaN
+    and infinities, RFC 8785 §3.2.2.3)."""
+    for shape in (number, [number, 1], {"b": number, "a": [number]}):
+        assert _outcome(canonical_json, shape) == _outcome(rfc8785.dumps, shape)
+
+
+@pytest.mark.parametrize(
+    ("value", "text"),
+    [
+        (1e21, "1e+21"),
+        (1e20, "100000000000000000000"),
+        (123456789012345680000.0, "123456789012345680000"),
+        (0.1 + 0.2, "0.30000000000000004"),
+        (1e-6, "0.000001"),
+        (1e-7, "1e-7"),
+        (1.5e-5, "0.000015"),
+        (-0.0, "0"),
+        (5614.0, "5614"),
+        (1e16, "10000000000000000"),
+    ],
+)
+def test_ecmascript_number_to_string(value: float, text: str) -> None:
+    """ECMA-262 Number::toString (which RFC 8785 §3.2.2.3 adopts): plain digits up to 21 of them,
+    "0.00…" down to 1e-6, exponent form with an explicit sign beyond (from memory of the
+    algorithm's steps)."""
+    assert canonical_json(value) == text.encode("ascii")
+
+
+def test_integers_beyond_the_exact_range_are_refused() -> None:
+    """RFC 8785 §3.2.2.3 serialises numbers as IEEE 754 doubles, and I-JSON (RFC 7493 §2.2)
+    keeps integers within ±(2**53 - 1); the rfc8785 package raises IntegerDomainError beyond."""
+    assert canonical_json([2**53 - 1, -(2**53 - 1)]) == b"[9007199254740991,-9007199254740991]"
+    for number in (2**53, -(2**53), 10**30):
+        with pytest.raises(rfc8785.IntegerDomainError):
+            canonical_json({"n": number})
+
+
+@pytest.mark.parametrize(
+    ("value", "error"),
+    [
+        ("\ud800", rfc8785.CanonicalizationError),
+        (["ok", "\udc00"], rfc8785.CanonicalizationError),
+        ({"a": "\udc000", "b": 1e-7}, rfc8785.CanonicalizationError),
+        ({"\udfff": 1}, UnicodeEncodeError),  # the package's UTF-16 sort key fails first
+    ],
+)
+def test_lone_surrogates_are_refused(value: Any, error: type[ValueError]) -> None:
+    """RFC 8785 §3.2.2.2 (strings are Unicode, written as UTF-8): a lone surrogate has no UTF-8
+    form; the rfc8785 package refuses it, with these error types, and so does canonical_json."""
+    with pytest.raises(error):
+        rfc8785.dumps(value)
+    with pytest.raises(error):
+        canonical_json(value)
+
+
+def test_demo_record_as_the_rfc8785_package() -> None:
+    """A whole record the project makes (the demo study in sample_requests, invented numbers) is
+    written as the rfc8785 package writes it."""
+    from service.intake.reading import read_request
+    from service.records.building import build_record
+
+    body = (Path(__file__).resolve().parents[2] / "sample_requests" / "vitamin_d3_softgel.json")
+    record = build_record(read_request("json", body.read_bytes(), {}))
+    assert canonical_json(record) == rfc8785.dumps(record)
+
+
+@settings(max_examples=300, deadline=None)
+@given(values, keys)
+def test_canonical_text_is_spliced_as_the_value_it_came_from(value: Any, key: str) -> None:
+    """An object holding CanonicalText(canonical_json(v)) has the canonical form of the object
+    holding v (rfc8785 package as the oracle), also when a key above U+FFFF sends the whole object
+    to the reference serialiser."""
+    try:
+        text = rfc8785.dumps(value).decode("utf-8")
+        expected = rfc8785.dumps({key: 1.0, "result": value, "z": [0.5]})
+    except (rfc8785.CanonicalizationError, UnicodeError):
+        return  # nothing to embed
+    assert canonical_json({key: 1.0, "result": CanonicalText(text), "z": [0.5]}) == expected
+
+
+@settings(max_examples=300, deadline=None)
+@given(values)
+def test_canonical_text_reads_back_to_itself(value: Any) -> None:
+    """canonical form → load_canonical → canonical form is the identity (the rfc8785 package
+    writes both forms), which lets the archive hash a record's stored text as it is."""
+    try:
+        text = rfc8785.dumps(value)
+    except (rfc8785.CanonicalizationError, UnicodeError):
+        return
+    assert rfc8785.dumps(load_canonical(text)) == text
