@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping
 from functools import partial
 from typing import Annotated, Any
 
+import anyio
+import anyio.to_thread
 from fastapi import APIRouter, Depends, Path, Query, Request
-from starlette.concurrency import run_in_threadpool
 from starlette.responses import JSONResponse, Response
 
 from service.api.access import Caller, require
@@ -35,6 +37,13 @@ CSV_QUERY_PARAMETERS = SETTING_FIELDS  # flat query parameters of a CSV upload
 ID_PATTERN = "^[0-9a-f]{32}$"
 
 
+def available_cores() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
 def archive_of(request: Request) -> Archive:
     archive: Archive = request.app.state.archive
     return archive
@@ -50,6 +59,7 @@ AUTH_PROBLEMS = (401, 403)
 
 def build_router(settings: ServiceSettings) -> APIRouter:
     router = APIRouter(prefix="/v1/analyses", tags=["analyses"])
+    analysis_limiter = anyio.CapacityLimiter(available_cores())
 
     @router.post(
         "",
@@ -99,9 +109,12 @@ def build_router(settings: ServiceSettings) -> APIRouter:
         fingerprint = request_fingerprint(body, content_type, request.query_params.multi_items())
         # Parsing, resampling and the archive write are blocking: keep them off the event loop.
         try:
-            stored, replayed = await run_in_threadpool(
+            # At most as many analyses at once as there are cores, first come first served:
+            # more threads would only share the cores and stretch every request's latency.
+            stored, replayed = await anyio.to_thread.run_sync(
                 partial(analyse_and_archive, archive, settings, kind, body, query,
-                        caller.submitter, idempotency_key=key, fingerprint=fingerprint)
+                        caller.submitter, idempotency_key=key, fingerprint=fingerprint),
+                limiter=analysis_limiter,
             )
         except IdempotencyConflict as exc:
             raise ProblemError(
