@@ -296,6 +296,13 @@ def finite_or_none(value: float) -> float | None:
     return value if math.isfinite(value) else None
 
 
+def ratio_acceptance_to_json(acc: RatioAcceptance) -> dict[str, Any]:
+    """The `acceptance` block of an average-bioequivalence result, whatever the design."""
+    return {"limits": {"lower": acc.limit_lower, "upper": acc.limit_upper},
+            "lower": acc.lower, "upper": acc.upper, "verdict": acc.verdict,
+            "rounding": acc.rounding, "reason": acc.reason}
+
+
 def average_bioequivalence_to_json(a: AverageBioequivalence) -> dict[str, Any]:
     """The ``average_bioequivalence`` block of a metric result (DESIGN.md)."""
     acc = a.acceptance
@@ -311,9 +318,7 @@ def average_bioequivalence_to_json(a: AverageBioequivalence) -> dict[str, Any]:
         "sequence_effect": {"f": a.sequence_f, "p": a.sequence_p,
                             "df_numerator": a.sequence_df_numerator,
                             "df_denominator": a.sequence_df_denominator},
-        "acceptance": {"limits": {"lower": acc.limit_lower, "upper": acc.limit_upper},
-                       "lower": acc.lower, "upper": acc.upper, "verdict": acc.verdict,
-                       "rounding": acc.rounding, "reason": acc.reason},
+        "acceptance": ratio_acceptance_to_json(acc),
         "test": a.test,
         "reference": a.reference,
         "subjects": a.subjects,

@@ -26,6 +26,7 @@ from service.stats.equivalence import (
     finite_or_none,
     interval_and_tost,
     judge_ratio_interval,
+    ratio_acceptance_to_json,
 )
 from service.stats.observations import code_observations
 from service.stats.phases import check_deadline
@@ -164,9 +165,7 @@ def parallel_average_bioequivalence_to_json(a: ParallelAverageBioequivalence) ->
         "within_subject_cv_percent": None,
         "residual_mean_square": None,
         "sequence_effect": {"f": None, "p": None, "df_numerator": None, "df_denominator": None},
-        "acceptance": {"limits": {"lower": acc.limit_lower, "upper": acc.limit_upper},
-                       "lower": acc.lower, "upper": acc.upper, "verdict": acc.verdict,
-                       "rounding": acc.rounding, "reason": acc.reason},
+        "acceptance": ratio_acceptance_to_json(acc),
         "test": a.test,
         "reference": a.reference,
         "subjects": a.subjects,
