@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 from collections.abc import Mapping
 from functools import partial
 from typing import Annotated, Any
@@ -25,6 +24,7 @@ from service.intake.csvinput import SETTING_FIELDS
 from service.intake.problems import InvalidRequest, Problem
 from service.report.bundles import build_bundle
 from service.report.rendering import render_report
+from service.stats.waves import available_threads
 
 # The report is self-contained (inline CSS and SVG, no script): forbid everything else.
 REPORT_SECURITY_POLICY = (
@@ -35,13 +35,6 @@ REPORT_SECURITY_POLICY = (
 CSV_QUERY_PARAMETERS = SETTING_FIELDS  # flat query parameters of a CSV upload
 
 ID_PATTERN = "^[0-9a-f]{32}$"
-
-
-def available_cores() -> int:
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # not on Linux
-        return max(1, os.cpu_count() or 1)
 
 
 def archive_of(request: Request) -> Archive:
@@ -59,7 +52,7 @@ AUTH_PROBLEMS = (401, 403)
 
 def build_router(settings: ServiceSettings) -> APIRouter:
     router = APIRouter(prefix="/v1/analyses", tags=["analyses"])
-    analysis_limiter = anyio.CapacityLimiter(available_cores())
+    analysis_limiter = anyio.CapacityLimiter(available_threads())
 
     @router.post(
         "",

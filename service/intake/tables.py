@@ -81,16 +81,6 @@ class MetricTable:
     observations: tuple[Observation, ...] = ()
     parallel: bool = False
 
-    @property
-    def replicated(self) -> bool:
-        """Some subject has a treatment more than once (a replicate design)."""
-        seen: set[tuple[str, str]] = set()
-        for o in self.observations:
-            if (o.subject, o.treatment) in seen:
-                return True
-            seen.add((o.subject, o.treatment))
-        return False
-
 
 def _validate_list(
     raw: dict[Any, Any], key: str, model: type[Record] | type[Profile], problems: list[Problem]

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from service.intake.tables import normalize_request
 from service.records.building import compute_result
 
 
@@ -17,18 +18,11 @@ def _request(subjects: int, stratified: bool) -> dict[str, Any]:
             value = 10.0 + (i % 7) + {"B": 0.0, "R": 5.0, "T": 5.5}[treatment] + 0.1 * period
             records.append({"subject": f"W{i:03d}", "period": period, "sequence": sequence,
                             "treatment": treatment, "metric": "warm-up", "value": value})
-    return {
-        "study": {}, "design": {"test": "T", "reference": "R", "baseline": "B"},
-        "records": records, "profiles": [],
-        "settings": {"replicates": 200, "seed": 1, "confidence_level": 0.9, "interval": "bca",
-                     "limits": {"lower": -0.2, "upper": 0.2}, "stratify_by_sequence": stratified,
-                     "incomplete_subjects": "exclude",
-                     "average_bioequivalence": {"confidence_level": 0.9,
-                                                "limits": {"lower": 80.0, "upper": 125.0},
-                                                "treatments_in_model": "compared"},
-                     "profiles": {"auc_method": "linear_up_log_down", "lloq": None,
-                                  "baseline_correction": False, "below_lloq_after_first": "exclude"}},
-    }
+    # Normalized like any request, so the warm-up never drifts from the settings' defaults.
+    return normalize_request({
+        "design": {"test": "T", "reference": "R", "baseline": "B"}, "records": records,
+        "settings": {"replicates": 200, "seed": 1, "stratify_by_sequence": stratified},
+    })
 
 
 def warm_up() -> None:

@@ -289,7 +289,6 @@ def test_a_treatment_in_a_fourth_period_is_kept_as_a_replicate() -> None:
     j = table.treatments.index(first["treatment"])
     assert table.values[i, j] == (first["value"] + extra["value"]) / 2
     assert table.periods[i, j] == first["period"]
-    assert table.replicated
     assert sum(o.subject == first["subject"] for o in table.observations) == 4
 
 
