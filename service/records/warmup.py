@@ -6,6 +6,7 @@ from typing import Any
 
 from service.intake.tables import normalize_request
 from service.records.building import compute_result
+from service.stats import kernels
 
 
 def _request(subjects: int, stratified: bool) -> dict[str, Any]:
@@ -26,5 +27,6 @@ def _request(subjects: int, stratified: bool) -> dict[str, Any]:
 
 
 def warm_up() -> None:
+    kernels.load_compiled()  # from here on every bootstrap in this process draws compiled
     for subjects, stratified in ((12, False), (12, True), (70, False), (70, True)):
         compute_result(_request(subjects, stratified))

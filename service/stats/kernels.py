@@ -1,197 +1,48 @@
-"""Compiled inner loops of the bootstrap (numba): subject draws, resampled means, presence, and the
-jackknife-after-bootstrap sums.
+"""The bootstrap's inner loops: subject draws, resampled means, presence, and the
+jackknife-after-bootstrap sums, from compiled code (compiled.py, numba) or plain numpy (plain.py).
 
-Draws come from one xoshiro256** stream per stratum and each replicate consumes its draws in order,
-so a result never depends on where a chunk ends. The draw loop can start from any stream states
-(streams.py finds the states where a given replicate starts), so that threads can draw blocks of
-replicates side by side (waves.py). The loops release the GIL.
+Both backends read the same xoshiro256** streams and add the same numbers in the same order, so
+they give the same results to the last bit. Loading the compiled loops costs a process about half
+a second (importing numba, initialising LLVM, reading the cached machine code), which a small
+command-line analysis would mostly spend waiting; plain numpy draws about 40 times slower. So
+a process that has not loaded them yet uses plain numpy for runs of fewer than
+COMPILED_FROM_DRAWS draws, and compiled code from then on (the service loads it at start-up,
+load_compiled).
 """
 
 from __future__ import annotations
 
+import sys
+from types import ModuleType
 from typing import Any
 
-import numba
 import numpy as np
 from numpy.typing import NDArray
 
+from service.stats import plain
 
-@numba.njit(inline="always")
-def _next_lane(
-    s0: Any, s1: Any, s2: Any, s3: Any, spare: Any, have: bool
-) -> tuple[Any, Any, Any, Any, Any, bool, Any]:  # pragma: no cover - compiled
-    # xoshiro256** (Blackman & Vigna 2021, ACM TOMS 47:36, "Scrambled linear pseudorandom number
-    # generators"); each 64-bit output is used as two 32-bit lanes, low lane first.
-    if have:
-        return s0, s1, s2, s3, spare, False, spare
-    x = s1 * np.uint64(5)
-    result = ((x << np.uint64(7)) | (x >> np.uint64(57))) * np.uint64(9)
-    t = s1 << np.uint64(17)
-    s2 ^= s0
-    s3 ^= s1
-    s1 ^= s2
-    s0 ^= s3
-    s2 ^= t
-    s3 = (s3 << np.uint64(45)) | (s3 >> np.uint64(19))
-    return s0, s1, s2, s3, result >> np.uint64(32), True, result & np.uint64(0xFFFFFFFF)
+# From this many draws (replicates × subjects) on, loading the compiled loops pays for itself
+# (about 0.1 s of plain-numpy drawing); it is also where a second thread starts to pay
+# (waves.MIN_BLOCK_DRAWS), and only compiled code draws on several threads.
+COMPILED_FROM_DRAWS = 1 << 20
+
+_COMPILED = "service.stats.compiled"
 
 
-@numba.njit(inline="always")
-def _draw_one(
-    s0: Any, s1: Any, s2: Any, s3: Any, spare: Any, have: bool, size: Any, threshold: Any,
-    missed: int,
-) -> tuple[Any, Any, Any, Any, Any, bool, Any, int]:  # pragma: no cover - compiled
-    # Lemire 2019 (ACM TOMACS 29:3): with a lane x uniform on [0, 2³²), m = x·size, the high word
-    # m >> 32 is exactly uniform on [0, size) once lanes whose low word is below 2³² mod size are
-    # rejected (probability < size/2³²). ``missed`` counts the rejected lanes.
-    while True:
-        s0, s1, s2, s3, spare, have, lane = _next_lane(s0, s1, s2, s3, spare, have)
-        m = lane * size
-        if (m & np.uint64(0xFFFFFFFF)) >= threshold:
-            return s0, s1, s2, s3, spare, have, np.int64(m >> np.uint64(32)), missed
-        missed += 1
+def load_compiled() -> ModuleType:
+    """The compiled loops, loaded (and from then on chosen by default in this process)."""
+    from service.stats import compiled
+
+    return compiled
 
 
-@numba.njit(inline="always")
-def _mark(present: Any, b: int, bits: Any, i: Any, bitset: bool) -> Any:  # pragma: no cover
-    if bitset:
-        return bits | (np.uint64(1) << np.uint64(i))
-    present[b, i] = 1
-    return bits
+def compiled_loaded() -> bool:
+    return _COMPILED in sys.modules
 
 
-@numba.njit(cache=True, nogil=True)
-def _draw_subjects(
-    states: Any, members: Any, bounds: Any, thresholds: Any, columns: Any,
-    out: Any, present: Any, index: Any, misses: Any,
-) -> None:  # pragma: no cover - compiled
-    # Stratum by stratum (its stream state stays in registers across the chunk), replicate b
-    # draws the stratum's members two at a time into index[b, bounds[s]:bounds[s+1]] (when index
-    # is c × n; it is 0 × 0 when nobody needs the draws). The first three column sums are formed
-    # in the same pass in draw order, with two running sums per column (first and second draw of
-    # each pair) to halve the add-latency chain, and added to out[b] stratum by stratum; further
-    # columns are summed from index afterwards. Presence: a bitset when there are ≤ 64 subjects
-    # (present is c × 1 uint64), else stores of 1 into the c × n byte array, zeroed first.
-    # misses[s] is set to the number of lanes of stream s that Lemire's method rejected.
-    c = out.shape[0]
-    k, n = columns.shape
-    bitset = n <= 64
-    keep = index.shape[0] > 0
-    whole = states.shape[0] == 1  # one stratum of everybody: members[u] is u
-    x0 = columns[0]
-    x1 = columns[1 % k]
-    x2 = columns[2 % k]
-    out[:, :] = 0.0
-    if bitset:
-        present[:, 0] = 0
-    else:
-        present[:, :] = 0
-    for s in range(states.shape[0]):
-        s0, s1, s2, s3, spare = states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4]
-        have = states[s, 5] != 0
-        start, stop = bounds[s], bounds[s + 1]
-        size = np.uint64(stop - start)
-        threshold = thresholds[s]
-        missed = 0
-        for b in range(c):
-            a0 = a1 = a2 = 0.0
-            e0 = e1 = e2 = 0.0
-            bits = np.uint64(0)
-            t = start
-            while t + 1 < stop:
-                s0, s1, s2, s3, spare, have, u, missed = _draw_one(
-                    s0, s1, s2, s3, spare, have, size, threshold, missed)
-                s0, s1, s2, s3, spare, have, v, missed = _draw_one(
-                    s0, s1, s2, s3, spare, have, size, threshold, missed)
-                i = u if whole else members[start + u]
-                j = v if whole else members[start + v]
-                if keep:
-                    index[b, t] = i
-                    index[b, t + 1] = j
-                a0 += x0[i]
-                e0 += x0[j]
-                a1 += x1[i]
-                e1 += x1[j]
-                a2 += x2[i]
-                e2 += x2[j]
-                bits = _mark(present, b, bits, i, bitset)
-                bits = _mark(present, b, bits, j, bitset)
-                t += 2
-            if t < stop:
-                s0, s1, s2, s3, spare, have, u, missed = _draw_one(
-                    s0, s1, s2, s3, spare, have, size, threshold, missed)
-                i = u if whole else members[start + u]
-                if keep:
-                    index[b, t] = i
-                a0 += x0[i]
-                a1 += x1[i]
-                a2 += x2[i]
-                bits = _mark(present, b, bits, i, bitset)
-            out[b, 0] += a0 + e0
-            if k > 1:
-                out[b, 1] += a1 + e1
-            if k > 2:
-                out[b, 2] += a2 + e2
-            if bitset:
-                present[b, 0] |= bits
-        states[s, 0], states[s, 1], states[s, 2], states[s, 3], states[s, 4] = s0, s1, s2, s3, spare
-        states[s, 5] = np.uint64(1) if have else np.uint64(0)
-        misses[s] = missed
-    for b in range(c):
-        for col in range(3, k):
-            xc = columns[col]
-            total = 0.0
-            for t in range(n):
-                total += xc[index[b, t]]
-            out[b, col] = total
-        for col in range(k):
-            out[b, col] /= n
-
-
-@numba.njit(cache=True, nogil=True)
-def _omission_sums_bits(
-    present: Any, first: int, stop: int, finite: Any, centred: Any, omitted: Any
-) -> None:  # pragma: no cover - compiled
-    # Subject i's sums take the replicates in order, whichever subjects a call covers. They run
-    # in a private copy (no cache line shared with another thread's subjects while adding),
-    # in loops that count from 0, which numba compiles without negative-index checks.
-    if stop <= first:
-        return
-    one = np.uint64(1)
-    sums = omitted[:, first:stop].copy()
-    count, sum1, sum2 = sums[0], sums[1], sums[2]
-    for b in range(present.shape[0]):
-        if not finite[b]:
-            continue
-        d = centred[b]
-        dd = d * d
-        bits = present[b, 0] >> np.uint64(first)
-        for i in range(stop - first):
-            if not (bits >> np.uint64(i)) & one:
-                count[i] += 1.0
-                sum1[i] += d
-                sum2[i] += dd
-    omitted[:, first:stop] = sums
-
-
-@numba.njit(cache=True, nogil=True)
-def _omission_sums_bytes(
-    present: Any, first: int, stop: int, finite: Any, centred: Any, omitted: Any
-) -> None:  # pragma: no cover - compiled
-    sums = omitted[:, first:stop].copy()
-    count, sum1, sum2 = sums[0], sums[1], sums[2]
-    for b in range(present.shape[0]):
-        if not finite[b]:
-            continue
-        d = centred[b]
-        dd = d * d
-        row = present[b, first:stop]
-        for i in range(stop - first):
-            if row[i] == 0:
-                count[i] += 1.0
-                sum1[i] += d
-                sum2[i] += dd
-    omitted[:, first:stop] = sums
+def use_compiled(draws: int) -> bool:
+    """Whether a run of ``draws`` draws should use the compiled loops."""
+    return compiled_loaded() or draws >= COMPILED_FROM_DRAWS
 
 
 def add_omission_sums(
@@ -201,27 +52,34 @@ def add_omission_sums(
     centred: NDArray[np.float64],
     omitted: NDArray[np.float64],
     subjects: tuple[int, int] | None = None,
+    compiled: bool | None = None,
 ) -> None:
     """For every subject i, add over the finite replicates that do not contain i the terms
     [1, θ*−θ̂, (θ*−θ̂)²] (the sums behind jackknife-after-bootstrap, Efron 1992 §3), replicate
     by replicate in order. ``present`` is what SubjectDraws.draw returns: bitsets (n ≤ 64) or one
     byte per subject. ``subjects`` = (first, stop) limits the work to those subjects, so that
-    threads can share it without changing the order of any subject's additions."""
+    threads can share it without changing the order of any subject's additions. ``compiled``:
+    which loops (None: compiled ones once this process has loaded them)."""
     first, stop = subjects if subjects is not None else (0, n)
-    if present.dtype == np.uint8:
-        _omission_sums_bytes(present, first, stop, finite, centred, omitted)
+    if not (compiled_loaded() if compiled is None else compiled):
+        plain.omission_sums(present, first, stop, finite, centred, omitted)
+    elif present.dtype == np.uint8:
+        load_compiled().omission_sums_bytes(present, first, stop, finite, centred, omitted)
     else:
-        _omission_sums_bits(present, first, stop, finite, centred, omitted)
+        load_compiled().omission_sums_bits(present, first, stop, finite, centred, omitted)
 
 
 class SubjectDraws:
     """Whole-subject bootstrap samples of an (n × k) table, stratified or not: SeedSequence(seed)
     spawns one xoshiro256** stream per stratum (one stratum of everybody without strata), and each
     replicate draws, per stratum, as many of its members as it has. Replicate b always gets the
-    same draws however the replicates are split into chunks or shared between threads."""
+    same draws however the replicates are split into chunks or shared between threads, and
+    whichever loops draw them (``compiled``; None: compiled ones once this process has loaded
+    them)."""
 
     def __init__(
-        self, seed: int, data: NDArray[np.float64], strata: NDArray[np.int64] | None = None
+        self, seed: int, data: NDArray[np.float64], strata: NDArray[np.int64] | None = None,
+        compiled: bool | None = None,
     ) -> None:
         n = data.shape[0]
         if strata is None:
@@ -240,6 +98,8 @@ class SubjectDraws:
         self._columns = np.ascontiguousarray(data.T)
         self.stratum_sizes = np.diff(self._bounds)
         self.subjects = n
+        self.compiled = compiled_loaded() if compiled is None else bool(compiled)
+        self._draw: Any = load_compiled().draw_subjects if self.compiled else plain.draw_subjects
 
     def buffers(
         self, replicates: int, keep_index: bool = False
@@ -273,7 +133,7 @@ class SubjectDraws:
         """Replicates drawn from the stream states ``states`` (strata × 6, see streams.py) into
         the given buffers, leaving the states where the draws end and the number of lanes each
         stream rejected in ``misses``. Touches no state of this object (threads share it)."""
-        _draw_subjects(states, self._members, self._bounds, self._thresholds, self._columns,
+        self._draw(states, self._members, self._bounds, self._thresholds, self._columns,
                        means, present, index, misses)
 
     def position(self) -> NDArray[np.uint64]:

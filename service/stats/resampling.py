@@ -8,8 +8,9 @@ counted in ``nonfinite_replicates``.
 Random subject indices: ``numpy.random.SeedSequence(seed)`` spawns one xoshiro256** stream
 (Blackman & Vigna 2021) per stratum, or one for all subjects without strata; 32-bit lanes of it are
 mapped to members of the stratum by Lemire's multiply-and-reject method, which is exactly uniform
-(kernels.py). Replicate b takes the next draws of each stream in order, so neither the chunk size
-nor the number of threads changes a number (waves.py).
+(kernels.py). Replicate b takes the next draws of each stream in order, so neither the chunk size,
+nor the number of threads, nor the loops that draw (compiled or plain numpy) changes a number
+(waves.py, kernels.py).
 """
 
 from __future__ import annotations
@@ -144,7 +145,8 @@ def bootstrap(
     ):
         raise ValueError(f"threads: must be a positive integer, got {threads!r}")
     n, _ = data.shape
-    draws = kernels.SubjectDraws(seed, data, strata)
+    draws = kernels.SubjectDraws(seed, data, strata,
+                                 compiled=kernels.use_compiled(replicates * n))
     chunk = chunk_size if chunk_size is not None else default_chunk_size(n)
     # omitted[:, i] = Σ over the finite replicates omitting subject i of [1, θ*−θ̂, (θ*−θ̂)²]
     theta_star, omitted = waves.resample(

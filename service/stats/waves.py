@@ -29,7 +29,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from service.stats import kernels, streams
+from service.stats import kernels
 from service.stats.deadlines import ComputeTimeExceeded
 
 FloatArray = NDArray[np.float64]
@@ -78,6 +78,8 @@ def resample(
     theta_star = np.empty(replicates, dtype=np.float64)
     omitted = np.zeros((3, n), dtype=np.float64)
     workers = max(1, min(threads, replicates * n // MIN_BLOCK_DRAWS))
+    if not draws.compiled:  # only the compiled loops release the GIL (and streams.py is compiled)
+        workers = 1
     if workers == 1:
         done = 0
         while done < replicates:
@@ -85,7 +87,8 @@ def resample(
             c = min(chunk, replicates - done)
             means, present, _ = draws.draw(c)
             theta, finite, centred = _evaluate(statistic, means, theta_hat)
-            kernels.add_omission_sums(present, n, finite, centred, omitted)
+            kernels.add_omission_sums(present, n, finite, centred, omitted,
+                                      compiled=draws.compiled)
             theta_star[done : done + c] = theta
             done += c
         return theta_star, omitted
@@ -100,7 +103,10 @@ class _Waves:
         self, draws: kernels.SubjectDraws, pool: ThreadPoolExecutor, workers: int, chunk: int,
         omitted: FloatArray,
     ) -> None:
+        from service.stats import streams  # compiled: loaded only when threads draw
+
         self.draws, self.pool, self.workers, self.omitted = draws, pool, workers, omitted
+        self.streams = streams
         self.span = workers * chunk
         self.sizes = draws.stratum_sizes
         # a block starts fewer than span·s lanes into the wave, plus a few rejected lanes
@@ -121,7 +127,7 @@ class _Waves:
         if self.previous is not None:
             present, finite, centred = self.previous
             kernels.add_omission_sums(present, self.draws.subjects, finite, centred, self.omitted,
-                                      subjects=self.subjects[t])
+                                      subjects=self.subjects[t], compiled=True)
 
     def run(
         self, statistic: MeansStatistic, theta_hat: float, theta_star: FloatArray,
@@ -161,7 +167,7 @@ class _Waves:
         ends = np.empty((blocks, self.sizes.size, 6), dtype=np.uint64)
 
         def draw_block(j: int) -> None:
-            streams.starts_at(self.table, base, lanes[j], ends[j])
+            self.streams.starts_at(self.table, base, lanes[j], ends[j])
             rows = slice(firsts[j], firsts[j + 1])
             self.draws.draw_from(ends[j], means[rows], present[rows], index[rows], misses[j])
 

@@ -71,11 +71,14 @@ def test_start_up_loads_the_compiled_kernels_before_the_first_request(tmp_path: 
         "from fastapi.testclient import TestClient\n"
         "from service.api.app import create_app\n"
         "from service.api.settings import ServiceSettings\n"
-        "from service.stats import kernels\n"
+        "import sys\n"
         f"app = create_app(ServiceSettings(database_url='sqlite:///{tmp_path / 'a.sqlite3'}'))\n"
-        "assert not kernels._draw_subjects.signatures\n"
+        "assert 'service.stats.compiled' not in sys.modules\n"
         "with TestClient(app):\n"
-        "    assert kernels._draw_subjects.signatures\n"
+        "    from service.stats import compiled\n"
+        "    assert compiled.draw_subjects.signatures\n"
+        "    assert compiled.omission_sums_bits.signatures\n"
+        "    assert compiled.omission_sums_bytes.signatures\n"
         "print('warm')\n"
     )
     done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,

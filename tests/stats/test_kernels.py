@@ -1,4 +1,5 @@
-"""The compiled bootstrap loops against plain numpy computations of the same definitions."""
+"""The bootstrap loops, compiled and plain numpy alike, against plain numpy computations of the
+same definitions and an independent rendering of the published generator."""
 
 from __future__ import annotations
 
@@ -8,16 +9,23 @@ import pytest
 from service.stats import kernels
 
 
+@pytest.fixture(params=[False, True], ids=["plain", "compiled"])
+def compiled(request: pytest.FixtureRequest) -> bool:
+    """Every check below holds for both sets of loops (kernels.py)."""
+    return bool(request.param)
+
+
 @pytest.mark.parametrize(("n", "k"), [(1, 1), (7, 2), (24, 3), (25, 3), (40, 5), (64, 3), (130, 4)])
-def test_resampled_means_equal_numpy_gather(n: int, k: int) -> None:
+def test_resampled_means_equal_numpy_gather(n: int, k: int, compiled: bool) -> None:
     """Definition of a bootstrap sample mean (Efron & Tibshirani 1993 ch. 6): the column means of
     the drawn rows, here by numpy fancy indexing of the draws the kernel reports."""
     data = np.random.default_rng(n * 10 + k).normal(size=(n, k))
-    means, _, index = kernels.SubjectDraws(n + k, data).draw(50, keep_index=True)
+    draws = kernels.SubjectDraws(n + k, data, compiled=compiled)
+    means, _, index = draws.draw(50, keep_index=True)
     np.testing.assert_allclose(means, data[index].mean(axis=1), rtol=1e-13, atol=1e-13)
 
 
-def test_stratified_draws_stay_in_their_strata_and_are_uniform() -> None:
+def test_stratified_draws_stay_in_their_strata_and_are_uniform(compiled: bool) -> None:
     """Stratified bootstrap (Efron & Tibshirani 1993 §6.5 — from memory): each replicate draws, per
     stratum, as many of its members as it has; within a stratum the draws fit the uniform
     distribution (Pearson's chi-square, scipy.stats.chisquare)."""
@@ -25,7 +33,8 @@ def test_stratified_draws_stay_in_their_strata_and_are_uniform() -> None:
 
     strata = np.array([2, 0, 1, 0, 2, 2, 1, 0, 0, 2, 1], dtype=np.int64)
     data = np.zeros((strata.size, 1))
-    _, _, index = kernels.SubjectDraws(9, data, strata).draw(20_000, keep_index=True)
+    draws = kernels.SubjectDraws(9, data, strata, compiled=compiled)
+    _, _, index = draws.draw(20_000, keep_index=True)
     start = 0
     for code in (0, 1, 2):
         members = np.flatnonzero(strata == code)
@@ -59,14 +68,14 @@ def _xoshiro256ss_reference(state: list[int], count: int) -> list[int]:
 
 
 @pytest.mark.parametrize("n", [3, 24, 200])
-def test_subject_draws_follow_xoshiro_and_lemire_exactly(n: int) -> None:
+def test_subject_draws_follow_xoshiro_and_lemire_exactly(n: int, compiled: bool) -> None:
     """The draws equal an independent Python rendering of xoshiro256** (two 32-bit lanes per output,
     low first) mapped by Lemire's method (Lemire 2019, ACM TOMACS 29:3): high word of x·n, rejecting
     lanes whose low word is below 2³² mod n; means equal numpy's mean of the drawn rows."""
     child = np.random.SeedSequence(77).spawn(1)[0]
     state = [int(v) for v in child.generate_state(4, dtype=np.uint64)]
     data = np.random.default_rng(1).normal(size=(n, 3))
-    means, _, index = kernels.SubjectDraws(77, data).draw(5, keep_index=True)
+    means, _, index = kernels.SubjectDraws(77, data, compiled=compiled).draw(5, keep_index=True)
     lanes = []
     for word in _xoshiro256ss_reference(state, 5 * n + 10):
         lanes += [word & 0xFFFFFFFF, word >> 32]
@@ -76,24 +85,25 @@ def test_subject_draws_follow_xoshiro_and_lemire_exactly(n: int) -> None:
     np.testing.assert_allclose(means, data[index].mean(axis=1), rtol=1e-13, atol=1e-13)
 
 
-def test_subject_draws_do_not_depend_on_chunking() -> None:
+def test_subject_draws_do_not_depend_on_chunking(compiled: bool) -> None:
     """Chunk invariance (DESIGN.md: chunk size must not change any number): 7 + 10 + 1 replicates
     drawn in pieces equal 18 drawn at once, bit for bit."""
     data = np.random.default_rng(2).normal(size=(13, 3))
-    whole = kernels.SubjectDraws(5, data).draw(18, keep_index=True)
-    draws = kernels.SubjectDraws(5, data)
+    whole = kernels.SubjectDraws(5, data, compiled=compiled).draw(18, keep_index=True)
+    draws = kernels.SubjectDraws(5, data, compiled=compiled)
     pieces = [draws.draw(c, keep_index=True) for c in (7, 10, 1)]
     for part in range(3):
         np.testing.assert_array_equal(whole[part], np.concatenate([p[part] for p in pieces]))
 
 
-def test_subject_draws_are_uniform() -> None:
+def test_subject_draws_are_uniform(compiled: bool) -> None:
     """Pearson's chi-square goodness of fit (scipy.stats.chisquare) of 700,000 draws over 7 subjects
     to the uniform distribution; a fixed seed, so the test is deterministic."""
     from scipy import stats
 
     data = np.zeros((7, 1))
-    _, _, index = kernels.SubjectDraws(3, data).draw(100_000, keep_index=True)
+    draws = kernels.SubjectDraws(3, data, compiled=compiled)
+    _, _, index = draws.draw(100_000, keep_index=True)
     counts = np.bincount(index.ravel(), minlength=7)
     assert stats.chisquare(counts).pvalue > 1e-3
 
@@ -117,11 +127,11 @@ def test_sorted_histogram_equals_numpy_histogram(seed: int) -> None:
 
 
 @pytest.mark.parametrize("n", [5, 64, 65, 150])
-def test_drawn_presence_and_omission_sums_match_the_draws(n: int) -> None:
+def test_drawn_presence_and_omission_sums_match_the_draws(n: int, compiled: bool) -> None:
     """Presence (bitsets up to 64 subjects, bytes beyond) marks exactly the drawn subjects, and the
     jackknife-after-bootstrap sums (Efron 1992 §3) from it equal an explicit numpy mask."""
     data = np.random.default_rng(n).normal(size=(n, 3))
-    _, present, index = kernels.SubjectDraws(n, data).draw(
+    _, present, index = kernels.SubjectDraws(n, data, compiled=compiled).draw(
         200, keep_index=True)
     mask = np.zeros((200, n), dtype=bool)
     np.put_along_axis(mask, index, True, axis=1)
@@ -133,7 +143,7 @@ def test_drawn_presence_and_omission_sums_match_the_draws(n: int) -> None:
     centred = np.random.default_rng(0).normal(size=200)
     finite = np.arange(200) % 7 != 0
     omitted = np.zeros((3, n))
-    kernels.add_omission_sums(present, n, finite, centred, omitted)
+    kernels.add_omission_sums(present, n, finite, centred, omitted, compiled=compiled)
     absent = ~mask & finite[:, None]
     np.testing.assert_array_equal(omitted[0], absent.sum(0))
     np.testing.assert_allclose(omitted[1], (absent * centred[:, None]).sum(0), rtol=1e-12,
@@ -215,13 +225,13 @@ def test_jump_table_matches_published_jump_polynomials() -> None:
         assert [int(v) for v in moved[:4]] == acc, power
 
 
-def test_rejected_lanes_are_counted() -> None:
+def test_rejected_lanes_are_counted(compiled: bool) -> None:
     """Lemire 2019 (ACM TOMACS 29:3): a lane x is rejected when the low word of x·n is below
     2³² mod n. With n = 2¹⁷ − 1 (2³² mod n = 2¹⁵) rejections are common enough to count: the
     kernel's count and its draws equal those of the reference generator above."""
     n = 131_071
     data = np.zeros((n, 1))
-    draws = kernels.SubjectDraws(12, data)
+    draws = kernels.SubjectDraws(12, data, compiled=compiled)
     start = draws.position()
     means, present, index = draws.buffers(2, keep_index=True)
     misses = np.zeros(1, dtype=np.int64)
@@ -234,22 +244,23 @@ def test_rejected_lanes_are_counted() -> None:
 
 
 @pytest.mark.parametrize("n", [5, 64, 65, 150])
-def test_omission_sums_by_subject_ranges_equal_one_pass(n: int) -> None:
+def test_omission_sums_by_subject_ranges_equal_one_pass(n: int, compiled: bool) -> None:
     """Common practice (floating-point sums depend on their order): the jackknife-after-bootstrap
     sums (Efron 1992 §3) added for a few subject ranges, as threads share them, equal the sums
     over all subjects at once bit for bit."""
     data = np.random.default_rng(n).normal(size=(n, 3))
-    _, present, _ = kernels.SubjectDraws(n, data).draw(300)
+    _, present, _ = kernels.SubjectDraws(n, data, compiled=compiled).draw(300)
     centred = np.random.default_rng(1).normal(size=300)
     finite = np.arange(300) % 5 != 0
     whole = np.zeros((3, n))
-    kernels.add_omission_sums(present, n, finite, centred, whole)
-    kernels.add_omission_sums(present, n, finite, centred[::-1].copy(), whole)
+    kernels.add_omission_sums(present, n, finite, centred, whole, compiled=compiled)
+    kernels.add_omission_sums(present, n, finite, centred[::-1].copy(), whole, compiled=compiled)
     parts = np.zeros((3, n))
     cuts = [0, 1, n // 3, n // 2 + 1, n]
     for first, stop in zip(cuts[:-1], cuts[1:], strict=True):
-        kernels.add_omission_sums(present, n, finite, centred, parts, subjects=(first, stop))
+        kernels.add_omission_sums(present, n, finite, centred, parts, subjects=(first, stop),
+                                  compiled=compiled)
     for first, stop in zip(cuts[:-1], cuts[1:], strict=True):
         kernels.add_omission_sums(present, n, finite, centred[::-1].copy(), parts,
-                                  subjects=(first, stop))
+                                  subjects=(first, stop), compiled=compiled)
     np.testing.assert_array_equal(parts, whole)

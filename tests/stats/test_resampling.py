@@ -208,12 +208,29 @@ def test_archived_outputs_reproduce_on_any_number_of_threads(
     Any number of threads and any chunk size must give them bit for bit; the threads are used
     even for small cases here."""
     monkeypatch.setattr(waves, "MIN_BLOCK_DRAWS", 1)
+    monkeypatch.setattr(kernels, "use_compiled", lambda draws: True)  # threads draw compiled
     stored = json.loads(bc.OUTPUTS.read_text())
     case = bc.CASES[number]
     for offset, threads in enumerate((1, 2, 3, 7)):
         chunk = _chunk_for(number + offset, case)
         pinned, _ = bc.run_case(case, chunk_size=chunk, threads=threads)
         assert json.loads(json.dumps(pinned)) == stored[case.name], (threads, chunk)
+
+
+@pytest.mark.parametrize("number", range(len(bc.CASES)), ids=[c.name for c in bc.CASES])
+def test_archived_outputs_reproduce_with_the_plain_numpy_loops(
+    number: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Source: bootstrap_outputs.json (the one-thread compiled engine of commit 57d5843): the
+    plain-numpy loops that short runs use (kernels.py) must give every pinned number bit for
+    bit, in one chunk or several (threads are asked for, and not used: only compiled loops run on
+    several)."""
+    monkeypatch.setattr(kernels, "use_compiled", lambda draws: False)
+    stored = json.loads(bc.OUTPUTS.read_text())
+    case = bc.CASES[number]
+    for chunk in (None, 997):
+        pinned, _ = bc.run_case(case, chunk_size=chunk, threads=3)
+        assert json.loads(json.dumps(pinned)) == stored[case.name], chunk
 
 
 def test_archived_outputs_reproduce_with_default_threads() -> None:
@@ -256,6 +273,7 @@ def test_blocks_after_rejected_lanes_start_in_the_right_place(
     assert _rejected_lanes(data, seed, 30) > 0
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(waves, "MIN_BLOCK_DRAWS", 1)
+        patch.setattr(kernels, "use_compiled", lambda draws: True)  # threads draw compiled
         one = _run(data, 30, seed, threads=1)
         many = _run(data, 30, seed, threads=threads, chunk_size=chunk)
     _assert_identical(one, many)
@@ -275,6 +293,7 @@ def test_thread_count_changes_no_number(
     codes = None if strata == 0 else np.arange(n, dtype=np.int64) % (strata + 1)
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(waves, "MIN_BLOCK_DRAWS", 1)
+        patch.setattr(kernels, "use_compiled", lambda draws: True)  # threads draw compiled
         one = _run(data, 1500, seed, strata=codes, threads=1)
         many = _run(data, 1500, seed, strata=codes, threads=threads, chunk_size=chunk)
     _assert_identical(one, many)
