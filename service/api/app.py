@@ -23,7 +23,7 @@ from service.api.settings import ServiceSettings
 from service.api.shares import build_share_router
 from service.api.signatures import build_signatures_router
 from service.archive.store import Archive
-from service.records.warmup import warm_up
+from service.records.warmup import prefer_compiled_loops, warm_up
 
 DESCRIPTION = (
     "Post a crossover measurement table (JSON, or CSV with settings as query parameters); "
@@ -54,6 +54,7 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     The archive is opened here (tables created when missing) and closed at shutdown.
     """
     settings = ServiceSettings.from_env() if settings is None else settings
+    prefer_compiled_loops()
     archive = Archive.create(settings.database_url, busy_timeout_ms=settings.busy_timeout_ms)
 
     @asynccontextmanager

@@ -11,7 +11,7 @@ from service.api.limits import check_work, time_exceeded
 from service.api.settings import ServiceSettings
 from service.archive.store import Archive
 from service.intake.reading import BodyKind, read_request
-from service.records.building import build_record
+from service.records.building import build_record_and_texts
 from service.stats.deadlines import ComputeTimeExceeded
 
 
@@ -46,11 +46,13 @@ def analyse_and_archive(
     inputs = read_request(kind, body, query, max_records=settings.max_records)
     check_work(inputs, settings.max_work)
     try:
-        record = build_record(inputs, deadline=deadline, threads=settings.bootstrap_threads or None)
+        record, texts = build_record_and_texts(inputs, deadline=deadline,
+                                               threads=settings.bootstrap_threads or None)
     except ComputeTimeExceeded as exc:
         raise time_exceeded(exc, settings.max_compute_seconds) from None
     if idempotency_key is None or fingerprint is None:
-        return archive.insert(record, submitter=submitter), False
+        return archive.insert(record, submitter=submitter, texts=texts), False
     return archive.insert_once(
-        record, submitter=submitter, idempotency_key=idempotency_key, request_sha256=fingerprint
+        record, submitter=submitter, idempotency_key=idempotency_key, request_sha256=fingerprint,
+        texts=texts,
     )

@@ -33,7 +33,13 @@ from service.archive.chain import record_hash
 from service.archive.engines import ArchiveError as ArchiveError
 from service.archive.engines import make_engine, safe_url
 from service.archive.verification import verify_rows
-from service.records.hashing import CanonicalText, canonical_json, load_canonical, sha256_hex
+from service.records.hashing import (
+    CanonicalText,
+    RecordTexts,
+    canonical_json,
+    load_canonical,
+    sha256_hex,
+)
 
 SCHEMA_VERSION = 1
 
@@ -237,12 +243,15 @@ class Archive:
             yield conn
 
     def insert(
-        self, record: Mapping[str, Any], submitter: str = "unauthenticated"
+        self, record: Mapping[str, Any], submitter: str = "unauthenticated",
+        texts: RecordTexts | None = None,
     ) -> StoredRecord:
-        """Append `record` ({"inputs_sha256", "inputs", "result"}) and return it as stored."""
-        texts = _record_texts(record)
+        """Append `record` ({"inputs_sha256", "inputs", "result"}) and return it as stored.
+        `texts`: the canonical JSON of its inputs and result where the caller made it already
+        (building.build_record_and_texts), so that it is not made twice."""
+        columns = _record_texts(record, texts)
         with self._engine.connect() as conn, _append_lock(conn):
-            row = _append(conn, texts, submitter)
+            row = _append(conn, columns, submitter)
         return _to_record(row)
 
     def insert_once(
@@ -252,19 +261,21 @@ class Archive:
         submitter: str,
         idempotency_key: str,
         request_sha256: str,
+        texts: RecordTexts | None = None,
     ) -> tuple[StoredRecord, bool]:
         """Append `record` unless `submitter` already used `idempotency_key`: then return the
         record of that first request and True (raise IdempotencyConflict if its fingerprint
         differs). The check and the append share the append lock, so two concurrent requests
-        with one key archive one record; the primary key of idempotency_keys backs that up."""
-        texts = _record_texts(record)
+        with one key archive one record; the primary key of idempotency_keys backs that up.
+        `texts` as for insert."""
+        columns = _record_texts(record, texts)
         for _attempt in range(2):
             try:
                 with self._engine.connect() as conn, _append_lock(conn):
                     earlier = _idempotent_row(conn, submitter, idempotency_key)
                     if earlier is not None:
                         return _replay(conn, earlier, request_sha256), True
-                    row = _append(conn, texts, submitter)
+                    row = _append(conn, columns, submitter)
                     conn.execute(idempotency_keys.insert().values(
                         submitter=submitter, idempotency_key=idempotency_key,
                         request_sha256=request_sha256, record_id=row["id"],
@@ -357,11 +368,12 @@ def _to_record(row: Mapping[str, Any]) -> StoredRecord:
     return StoredRecord(fields, "{" + ",".join(members) + "}")
 
 
-def _record_texts(record: Mapping[str, Any]) -> dict[str, Any]:
-    inputs_text = canonical_json(record["inputs"])
+def _record_texts(record: Mapping[str, Any], texts: RecordTexts | None) -> dict[str, Any]:
+    inputs_text = canonical_json(record["inputs"]) if texts is None else texts.inputs
     if sha256_hex(inputs_text) != record["inputs_sha256"]:
         raise ValueError("inputs_sha256 does not match the canonical form of inputs")
-    result_text = canonical_json(record["result"]).decode("utf-8")
+    result_text = (canonical_json(record["result"]) if texts is None else texts.result).decode(
+        "utf-8")
     return {
         "inputs_sha256": record["inputs_sha256"],
         "inputs": inputs_text.decode("utf-8"),

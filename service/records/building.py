@@ -14,7 +14,7 @@ import scipy
 from service import __version__
 from service.intake.tables import MetricTable, build_tables
 from service.records.bioequivalence import abe_block, design_of
-from service.records.hashing import inputs_sha256
+from service.records.hashing import RecordTexts, canonical_json, sha256_hex
 from service.records.profiles import derive_profile_metrics
 from service.records.tmax import tmax_comparison
 from service.stats.designs import DesignRecognition
@@ -40,11 +40,19 @@ def build_record(
 ) -> dict[str, Any]:
     """The record without `id`/`created_at` (the archive adds those). `threads` caps the
     bootstrap's threads (None: every core this process may use); no number depends on it."""
-    return {
-        "inputs_sha256": inputs_sha256(inputs),
-        "inputs": inputs,
-        "result": compute_result(inputs, deadline=deadline, threads=threads),
-    }
+    return build_record_and_texts(inputs, deadline=deadline, threads=threads)[0]
+
+
+def build_record_and_texts(
+    inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None
+) -> tuple[dict[str, Any], RecordTexts | None]:
+    """build_record, with the canonical JSON of its inputs and result (made once here: the
+    inputs hash and the finiteness check need them anyway) for Archive.insert; None where the
+    result has no canonical form (the archive then refuses it, naming the problem)."""
+    inputs_text = canonical_json(inputs)
+    result, result_text = _result_and_text(inputs, deadline, threads)
+    record = {"inputs_sha256": sha256_hex(inputs_text), "inputs": inputs, "result": result}
+    return record, None if result_text is None else RecordTexts(inputs_text, result_text)
 
 
 def compute_result(
@@ -52,6 +60,12 @@ def compute_result(
 ) -> dict[str, Any]:
     """The result of `inputs`. `deadline` (time.monotonic()) stops the bootstrap with
     service.stats.deadlines.ComputeTimeExceeded once it has passed."""
+    return _result_and_text(inputs, deadline, threads)[0]
+
+
+def _result_and_text(
+    inputs: dict[str, Any], deadline: float | None, threads: int | None
+) -> tuple[dict[str, Any], bytes | None]:
     warnings: list[dict[str, Any]] = []
     # Every phase honours the compute-time cap, not only the bootstrap loop.
     check_deadline(deadline, "the concentration–time profiles", 0, 3)
@@ -81,6 +95,10 @@ def compute_result(
     if inputs.get("profiles"):
         result["profiles"] = derived.profiles
         result["profile_rules"] = derived.rules
+    try:  # RFC 8785 refuses NaN and ±Infinity: the usual case is checked by serialising once
+        return result, canonical_json(result)
+    except ValueError:
+        pass
     found: list[str] = []
     if not _all_finite(result):
         result = _replace_nonfinite(result, ("result",), found)
@@ -94,7 +112,10 @@ def compute_result(
                 + (f" and {len(found) - 20} more" if len(found) > 20 else ""),
             }
         )
-    return result
+    try:
+        return result, canonical_json(result)
+    except ValueError:
+        return result, None
 
 
 def _analyse_metric(

@@ -42,6 +42,15 @@ class CanonicalText:
     text: str
 
 
+@dataclass(frozen=True, slots=True)
+class RecordTexts:
+    """The canonical JSON of a record's inputs and result, made once where the record is built
+    (its inputs hash is the SHA-256 of ``inputs``), so that archiving it serialises neither again."""
+
+    inputs: bytes
+    result: bytes
+
+
 class _NotFast(Exception):
     """The value needs the reference serialiser (or makes it raise)."""
 
@@ -157,11 +166,22 @@ def _expanded(obj: Any) -> Any:
     return obj
 
 
+# An integer literal of 2**53 or more is 16 digits or more, not after a digit or a point and not
+# before a point or an exponent; text without such a run (strings included, where a match only
+# costs the slower path) holds none, and the C decoder reads it alone.
+_LONG_INTEGER = r"(?<![0-9.])[0-9]{16,}(?![0-9.eE])"
+_LONG_DIGITS = re.compile(_LONG_INTEGER)
+_LONG_DIGIT_BYTES = re.compile(_LONG_INTEGER.encode("ascii"))
+
+
 def load_canonical(text: str | bytes) -> Any:
     """Read canonical JSON back so that canonical_json(load_canonical(t)) == t: an integer
     literal of 2**53 or more whose digits are exactly the canonical form of a double is that
     double (normalized inputs never hold such integers: float fields are floats, int fields stay
     below 2**53)."""
+    long_digits = _LONG_DIGITS if isinstance(text, str) else _LONG_DIGIT_BYTES
+    if long_digits.search(text) is None:  # type: ignore[arg-type]
+        return json.loads(text)
     return json.loads(text, parse_int=_parse_int)
 
 

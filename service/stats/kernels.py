@@ -3,11 +3,12 @@ jackknife-after-bootstrap sums, from compiled code (compiled.py, numba) or plain
 
 Both backends read the same xoshiro256** streams and add the same numbers in the same order, so
 they give the same results to the last bit. Loading the compiled loops costs a process about half
-a second (importing numba, initialising LLVM, reading the cached machine code), which a small
-command-line analysis would mostly spend waiting; plain numpy draws about 40 times slower. So
-a process that has not loaded them yet uses plain numpy for runs of fewer than
-COMPILED_FROM_DRAWS draws, and compiled code from then on (the service loads it at start-up,
-load_compiled).
+a second (importing numba, initialising LLVM, reading the cached machine code), which a short
+command-line analysis would mostly spend waiting; plain numpy draws about 40 times slower. So a
+process draws in plain numpy until its draws add up to COMPILED_FROM_DRAWS (about a tenth of a
+second of plain drawing), and compiled from then on (a rent-or-buy rule: a process never loses
+much more than the loading time either way). Any single run of that size or more, and any run on
+several threads, draws compiled; the service loads them at start-up (load_compiled).
 """
 
 from __future__ import annotations
@@ -21,10 +22,12 @@ from numpy.typing import NDArray
 
 from service.stats import plain
 
-# From this many draws (replicates × subjects) on, loading the compiled loops pays for itself
-# (about 0.1 s of plain-numpy drawing); it is also where a second thread starts to pay
-# (waves.MIN_BLOCK_DRAWS), and only compiled code draws on several threads.
+# Draws (replicates × subjects) in plain numpy after which a process loads the compiled loops
+# (about 0.1 s of plain-numpy drawing). A single run this large is also where a second thread
+# starts to pay (waves.MIN_BLOCK_DRAWS), and only compiled code draws on several threads.
 COMPILED_FROM_DRAWS = 1 << 20
+
+_plain_draws = 0  # drawn in plain numpy so far by this process (a race only miscounts a little)
 
 _COMPILED = "service.stats.compiled"
 
@@ -41,8 +44,13 @@ def compiled_loaded() -> bool:
 
 
 def use_compiled(draws: int) -> bool:
-    """Whether a run of ``draws`` draws should use the compiled loops."""
-    return compiled_loaded() or draws >= COMPILED_FROM_DRAWS
+    """Whether a run of ``draws`` draws should use the compiled loops (see above); counts the
+    run's draws towards the plain-numpy total when it does not."""
+    global _plain_draws
+    if compiled_loaded():
+        return True
+    _plain_draws += draws
+    return _plain_draws >= COMPILED_FROM_DRAWS
 
 
 def add_omission_sums(

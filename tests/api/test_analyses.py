@@ -15,7 +15,7 @@ import pytest
 import rfc8785
 
 from service.api import submissions
-from service.records.building import build_record
+from service.records.building import build_record_and_texts
 from tests.api.conftest import CSV_QUERY, ApiClient, csv_body, json_request, table_rows
 
 REPORT_POLICY = (
@@ -209,14 +209,14 @@ def test_analysis_runs_off_the_event_loop(
     a worker thread (Starlette docs, "Thread pool": blocking calls belong in run_in_threadpool)."""
     entered, finished = threading.Event(), threading.Event()
 
-    def slow_build_record(inputs: dict[str, Any], **options: Any) -> dict[str, Any]:
+    def slow_build_record(inputs: dict[str, Any], **options: Any) -> tuple[dict[str, Any], Any]:
         entered.set()
         time.sleep(1.5)
-        record: dict[str, Any] = build_record(inputs, **options)
+        built: tuple[dict[str, Any], Any] = build_record_and_texts(inputs, **options)
         finished.set()
-        return record
+        return built
 
-    monkeypatch.setattr(submissions, "build_record", slow_build_record)
+    monkeypatch.setattr(submissions, "build_record_and_texts", slow_build_record)
     pending = client.submit("POST", "/v1/analyses", json=json_request())
     assert entered.wait(30)
     assert client.get("/healthz").status_code == 200

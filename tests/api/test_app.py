@@ -64,18 +64,20 @@ def test_unusable_database_url_is_a_clear_error() -> None:
 
 
 def test_start_up_loads_the_compiled_kernels_before_the_first_request(tmp_path: Path) -> None:
-    """`serve` must not make the first request wait for compiled code (numba dispatchers gain a
-    signature once a loop is compiled or loaded from its cache, numba docs). Run in a fresh
-    process so nothing in this test session has loaded them already."""
+    """`serve` draws every bootstrap with the compiled loops (kernels.py) and must not make the
+    first request wait for them (numba dispatchers gain a signature once a loop is compiled or
+    loaded from its cache, numba docs). Run in a fresh process so nothing in this test session
+    has loaded them already."""
     script = (
         "from fastapi.testclient import TestClient\n"
         "from service.api.app import create_app\n"
         "from service.api.settings import ServiceSettings\n"
         "import sys\n"
         f"app = create_app(ServiceSettings(database_url='sqlite:///{tmp_path / 'a.sqlite3'}'))\n"
-        "assert 'service.stats.compiled' not in sys.modules\n"
+        "from service.stats import compiled, kernels\n"
+        "assert kernels.SubjectDraws(1, __import__('numpy').zeros((2, 1))).compiled\n"
+        "assert not compiled.draw_subjects.signatures\n"
         "with TestClient(app):\n"
-        "    from service.stats import compiled\n"
         "    assert compiled.draw_subjects.signatures\n"
         "    assert compiled.omission_sums_bits.signatures\n"
         "    assert compiled.omission_sums_bytes.signatures\n"

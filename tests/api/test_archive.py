@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import json
 import sqlite3
 import threading
 from pathlib import Path
@@ -31,6 +32,40 @@ def archive(tmp_path: Path) -> Any:
     store = Archive.create(f"sqlite:///{tmp_path / 'store' / 'a.sqlite3'}")
     yield store
     store.close()
+
+
+def test_texts_made_with_the_record_are_stored_as_made_without(
+    archive: Archive, tmp_path: Path
+) -> None:
+    """build_record_and_texts hands the archive the canonical texts it made (RFC 8785, the
+    rfc8785 package here): the stored columns are the same as when the archive makes them, and
+    texts that do not match the record's inputs hash are refused before anything is written."""
+    from service.intake.tables import normalize_request
+    from service.records.building import build_record_and_texts
+
+    request = normalize_request({
+        "design": {"test": "T", "reference": "R", "baseline": "B"},
+        "records": [{"subject": f"S{i}", "period": p, "treatment": t, "value": v + i + 0.25 * p}
+                    for i in range(6) for p, (t, v) in enumerate((("B", 5.0), ("R", 9.0),
+                                                                  ("T", 9.5)), 1)],
+        "settings": {"replicates": 200, "seed": 3},
+    })
+    record, texts = build_record_and_texts(request)
+    assert texts is not None
+    assert texts.inputs == rfc8785.dumps(record["inputs"])
+    assert texts.result == rfc8785.dumps(record["result"])
+    with_texts = archive.insert(record, texts=texts)
+    without = archive.insert(record)
+    with sqlite3.connect(tmp_path / "store" / "a.sqlite3") as raw:
+        rows = raw.execute("SELECT inputs, result, engine FROM records ORDER BY seq").fetchall()
+    assert rows[0] == rows[1]
+    same = ("inputs_sha256", "inputs", "result", "submitter")
+    assert [with_texts[key] for key in same] == [without[key] for key in same]
+    assert json.loads(with_texts.json_text)["result"] == json.loads(without.json_text)["result"]
+    other = small_record(1)
+    with pytest.raises(ValueError, match="inputs_sha256"):
+        archive.insert(other, texts=texts)
+    assert archive.list()[1] == 2
 
 
 def test_sqlite_file_layout_and_pragmas(archive: Archive, tmp_path: Path) -> None:

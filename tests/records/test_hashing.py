@@ -273,3 +273,29 @@ def test_canonical_text_reads_back_to_itself(value: Any) -> None:
     except (rfc8785.CanonicalizationError, UnicodeError):
         return
     assert rfc8785.dumps(load_canonical(text)) == text
+
+
+def _typed(value: Any) -> Any:
+    """A value with the type of every number kept (1 and 1.0 compare equal in Python)."""
+    if isinstance(value, dict):
+        return {key: _typed(item) for key, item in value.items()}
+    if isinstance(value, list):
+        return [_typed(item) for item in value]
+    return (type(value).__name__, value)
+
+
+@settings(max_examples=300, deadline=None)
+@given(values)
+def test_reading_back_without_the_integer_hook_changes_no_type(value: Any) -> None:
+    """load_canonical reads text that holds no integer literal of 16 digits or more with the plain
+    C decoder (json.loads), and any other text with the hook that turns canonical doubles back
+    into floats; either way the values and their types are the hook's."""
+    from service.records.hashing import _parse_int
+
+    try:
+        text = rfc8785.dumps(value)
+    except (rfc8785.CanonicalizationError, UnicodeError):
+        return
+    expected = json.loads(text, parse_int=_parse_int)
+    assert _typed(load_canonical(text)) == _typed(expected)
+    assert _typed(load_canonical(text.decode("utf-8"))) == _typed(expected)

@@ -106,13 +106,21 @@ def test_omission_sums_are_identical(n: int) -> None:
     np.testing.assert_array_equal(results[0], results[1])
 
 
-def test_the_default_choice_of_loops() -> None:
-    """Compiled loops once this process has loaded them (this test module has), and for any run
-    of COMPILED_FROM_DRAWS draws or more."""
+def test_the_default_choice_of_loops(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Plain numpy until the process has drawn COMPILED_FROM_DRAWS in it, compiled loops from
+    then on and once this process has loaded them (this test module has)."""
     assert kernels.compiled_loaded()
     assert kernels.SubjectDraws(1, np.zeros((3, 1))).compiled
-    assert kernels.use_compiled(1) and kernels.use_compiled(kernels.COMPILED_FROM_DRAWS)
+    assert kernels.use_compiled(1)
     assert not kernels.SubjectDraws(1, np.zeros((3, 1)), compiled=False).compiled
+    monkeypatch.setattr(kernels, "compiled_loaded", lambda: False)
+    monkeypatch.setattr(kernels, "_plain_draws", 0)
+    limit = kernels.COMPILED_FROM_DRAWS
+    assert not kernels.use_compiled(limit // 2)
+    assert not kernels.use_compiled(limit // 2 - 1)
+    assert kernels.use_compiled(1)  # the total reaches the limit here
+    monkeypatch.setattr(kernels, "_plain_draws", 0)
+    assert kernels.use_compiled(limit)
 
 
 def test_a_command_line_analysis_does_not_load_the_compiled_loops(tmp_path: Path) -> None:
