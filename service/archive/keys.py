@@ -114,11 +114,14 @@ def revoke_key(archive: Archive, label: str) -> ApiKey:
     return next(k for k in list_keys(archive) if k.label == label)
 
 
+_ACTIVE_KEYS = select(func.count()).select_from(api_keys).where(api_keys.c.revoked_at.is_(None))
+
+
 def active_key_count(archive: Archive) -> int:
+    """Read from the archive on every call, so that a key made by any process applies to the
+    very next request."""
     with archive.engine.connect() as conn:
-        count = conn.execute(
-            select(func.count()).select_from(api_keys).where(api_keys.c.revoked_at.is_(None))
-        ).scalar_one()
+        count = conn.execute(_ACTIVE_KEYS).scalar_one()
     return int(count)
 
 

@@ -385,11 +385,15 @@ def _record_texts(record: Mapping[str, Any], texts: RecordTexts | None) -> dict[
     }
 
 
+# Built once: SQLAlchemy then finds their compiled SQL in its cache without rebuilding the
+# statement and its cache key on every append (a good part of an append's Python time).
+_HEAD_HASH = select(records.c.record_sha256).order_by(records.c.seq.desc()).limit(1)
+_INSERT_RECORD = records.insert()
+
+
 def _append(conn: Connection, texts: Mapping[str, Any], submitter: str) -> dict[str, Any]:
     """Insert one row at the head of the chain; the caller holds the append lock."""
-    previous = conn.execute(
-        select(records.c.record_sha256).order_by(records.c.seq.desc()).limit(1)
-    ).scalar_one_or_none()
+    previous = conn.execute(_HEAD_HASH).scalar_one_or_none()
     created_at = utc_timestamp()
     row = {
         "id": uuid.uuid4().hex,
@@ -408,7 +412,7 @@ def _append(conn: Connection, texts: Mapping[str, Any], submitter: str) -> dict[
         ),
         "previous_record_sha256": previous,
     }
-    conn.execute(records.insert().values(**row))
+    conn.execute(_INSERT_RECORD, row)
     return row
 
 
