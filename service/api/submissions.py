@@ -27,7 +27,9 @@ def analyse_and_archive(
     fingerprint: str | None = None,
 ) -> tuple[dict[str, Any], bool]:
     """(the archived record, whether it is the replay of an earlier request with the same
-    Idempotency-Key). Blocking: parsing, resampling and the archive write; run it off the loop.
+    Idempotency-Key). A new record is not read back from its stored texts (its json_text is
+    them; callers answer with that and its id). Blocking: parsing, resampling and the archive
+    write; run it off the loop.
 
     Raises InvalidRequest (every problem of the upload), ProblemError 422 (work or time cap) and
     IdempotencyConflict; nothing is archived then.
@@ -51,8 +53,8 @@ def analyse_and_archive(
     except ComputeTimeExceeded as exc:
         raise time_exceeded(exc, settings.max_compute_seconds) from None
     if idempotency_key is None or fingerprint is None:
-        return archive.insert(record, submitter=submitter, texts=texts), False
+        return archive.insert(record, submitter=submitter, texts=texts, read_back=False), False
     return archive.insert_once(
         record, submitter=submitter, idempotency_key=idempotency_key, request_sha256=fingerprint,
-        texts=texts,
+        texts=texts, read_back=False,
     )

@@ -244,15 +244,18 @@ class Archive:
 
     def insert(
         self, record: Mapping[str, Any], submitter: str = "unauthenticated",
-        texts: RecordTexts | None = None,
+        texts: RecordTexts | None = None, *, read_back: bool = True,
     ) -> StoredRecord:
         """Append `record` ({"inputs_sha256", "inputs", "result"}) and return it as stored.
         `texts`: the canonical JSON of its inputs and result where the caller made it already
-        (building.build_record_and_texts), so that it is not made twice."""
+        (building.build_record_and_texts), so that it is not made twice. `read_back=False`, for
+        a caller that only answers with `json_text` and `id` (POST /v1/analyses): inputs and
+        result of the returned record are then `record`'s own objects, not read back from the
+        stored texts (same content; tuples stay tuples, 1.0 stays a float)."""
         columns = _record_texts(record, texts)
         with self._engine.connect() as conn, _append_lock(conn):
             row = _append(conn, columns, submitter)
-        return _to_record(row)
+        return _to_record(row, None if read_back else record)
 
     def insert_once(
         self,
@@ -262,12 +265,13 @@ class Archive:
         idempotency_key: str,
         request_sha256: str,
         texts: RecordTexts | None = None,
+        read_back: bool = True,
     ) -> tuple[StoredRecord, bool]:
         """Append `record` unless `submitter` already used `idempotency_key`: then return the
         record of that first request and True (raise IdempotencyConflict if its fingerprint
         differs). The check and the append share the append lock, so two concurrent requests
         with one key archive one record; the primary key of idempotency_keys backs that up.
-        `texts` as for insert."""
+        `texts` and `read_back` as for insert (a replay is always read back)."""
         columns = _record_texts(record, texts)
         for _attempt in range(2):
             try:
@@ -281,7 +285,7 @@ class Archive:
                         request_sha256=request_sha256, record_id=row["id"],
                         created_at=row["created_at"],
                     ))
-                return _to_record(row), False
+                return _to_record(row, None if read_back else record), False
             except IntegrityError:
                 continue  # another writer got there first (no shared lock): read its row
         raise ArchiveError("the idempotency key could not be recorded")
@@ -357,9 +361,13 @@ _RECORD_KEYS = ("id", "created_at", "inputs_sha256", "inputs", "result", "submit
 _TEXT_COLUMNS = ("inputs", "result")  # canonical JSON text
 
 
-def _to_record(row: Mapping[str, Any]) -> StoredRecord:
+def _to_record(row: Mapping[str, Any], given: Mapping[str, Any] | None = None) -> StoredRecord:
+    """The stored row as a record; `given`: the record just appended, whose inputs and result
+    stand in for reading the stored texts back (Archive.insert's read_back=False)."""
     fields = {
-        key: load_canonical(row[key]) if key in _TEXT_COLUMNS else row[key] for key in _RECORD_KEYS
+        key: (load_canonical(row[key]) if given is None else given[key])
+        if key in _TEXT_COLUMNS else row[key]
+        for key in _RECORD_KEYS
     }
     members = (
         f'"{key}":{row[key] if key in _TEXT_COLUMNS else json.dumps(row[key], ensure_ascii=False)}'

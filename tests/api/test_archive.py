@@ -13,7 +13,7 @@ import pytest
 import rfc8785
 
 from service.api.settings import DEFAULT_DATABASE_URL, ServiceSettings, database_url_from_argument
-from service.archive.store import Archive, ArchiveError
+from service.archive.store import Archive, ArchiveError, StoredRecord
 
 
 def small_record(i: int) -> dict[str, Any]:
@@ -66,6 +66,36 @@ def test_texts_made_with_the_record_are_stored_as_made_without(
     with pytest.raises(ValueError, match="inputs_sha256"):
         archive.insert(other, texts=texts)
     assert archive.list()[1] == 2
+
+
+def test_a_record_not_read_back_answers_with_the_text_a_later_read_gives(
+    archive: Archive,
+) -> None:
+    """read_back=False (the POST path) skips parsing the stored texts again: the JSON the caller
+    answers with is still the stored one, byte for byte what a later read of the same record
+    writes (json.loads, Python's standard library, reads both), and the scalar columns are the
+    stored ones."""
+    record = small_record(2)
+    record["result"] = {"integral": 3.0, "pair": (1.5, 2.5), "zero": -0.0}
+    fresh = archive.insert(record, read_back=False)
+    later = archive.get(fresh["id"])
+    assert isinstance(later, StoredRecord)
+    assert json.loads(fresh.json_text) == json.loads(later.json_text) == {
+        key: later[key] for key in later}
+    assert fresh.json_text == later.json_text
+    assert json.loads(fresh.json_text)["result"] == {"integral": 3, "pair": [1.5, 2.5], "zero": 0}
+    assert fresh["result"] is record["result"]
+    scalars = ("id", "created_at", "inputs_sha256", "submitter", "record_sha256",
+               "previous_record_sha256")
+    assert [fresh[key] for key in scalars] == [later[key] for key in scalars]
+    first, first_replayed = archive.insert_once(
+        record, submitter="lab", idempotency_key="k1", request_sha256="a" * 64, read_back=False)
+    again, again_replayed = archive.insert_once(
+        record, submitter="lab", idempotency_key="k1", request_sha256="a" * 64, read_back=False)
+    assert (first_replayed, again_replayed) == (False, True)
+    assert first["result"] is record["result"]
+    assert again["result"] == {"integral": 3, "pair": [1.5, 2.5], "zero": 0}  # read back
+    assert again.json_text == first.json_text
 
 
 def test_sqlite_file_layout_and_pragmas(archive: Archive, tmp_path: Path) -> None:
