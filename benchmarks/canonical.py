@@ -2,8 +2,9 @@
 
 1. canonical_json of the demo record against rfc8785.dumps (the reference package) on the same
    object, runs alternating, best of REPEATS; the bytes must be identical.
-2. The record path of POST /v1/analyses — build_record → Archive.insert (SQLite in a temporary
-   folder) → the response body — less the time spent inside the statistics (every service.stats
+2. The record path of POST /v1/analyses — reading the body (parse and validate) → build_record →
+   Archive.insert (SQLite in a temporary folder) → the response body — less the time spent inside
+   the statistics (every service.stats
    function the record modules call, except the *_to_json converters, which are record assembly).
 
 Run: .venv/bin/python benchmarks/canonical.py   (a script, not a test)
@@ -37,6 +38,7 @@ from service.records.warmup import prefer_compiled_loops  # noqa: E402
 DEMO_REQUEST = ROOT / "sample_requests" / "vitamin_d3_softgel.json"
 REPEATS = 41
 PATH_RUNS = 41
+TARGET_MS = 2.0  # the per-request budget outside the statistics (issue 12)
 
 
 def best_pair(first: Callable[[], object], second: Callable[[], object]) -> tuple[float, float]:
@@ -91,7 +93,8 @@ class StatisticsClock:
 
 def main() -> int:
     prefer_compiled_loops()  # as the service does (create_app)
-    inputs = read_request("json", DEMO_REQUEST.read_bytes(), {})
+    body_bytes = DEMO_REQUEST.read_bytes()
+    inputs = read_request("json", body_bytes, {})
     record = building.build_record(inputs)
     subjects = len({row["subject"] for row in inputs["records"]})
     print(f"demo study: {subjects} subjects, B = {inputs['settings']['replicates']}, canonical "
@@ -119,6 +122,7 @@ def main() -> int:
             for _ in range(PATH_RUNS):
                 clock.seconds = clock.cpu_seconds = 0.0
                 start, cpu_start = time.perf_counter(), time.process_time()
+                inputs = read_request("json", body_bytes, {})
                 record, texts = building.build_record_and_texts(inputs)
                 # As POST /v1/analyses does it (service.api.submissions).
                 stored = archive.insert(record, texts=texts, read_back=False)
@@ -131,7 +135,7 @@ def main() -> int:
             same_response = body == JSONResponse(read_later, status_code=201).body
         finally:
             archive.close()
-    print(f"\nrecord path build_record → insert → response body, {PATH_RUNS} runs "
+    print(f"\nrecord path read body → build_record → insert → response body, {PATH_RUNS} runs "
           f"({len(clock.wrapped)} statistics functions timed apart)")
     print(f"  whole path        median {statistics.median(totals) * 1e3:7.2f} ms   "
           f"best {min(totals) * 1e3:7.2f} ms")
@@ -139,6 +143,10 @@ def main() -> int:
           f"best {min(outside) * 1e3:7.2f} ms   (wall; includes the commit's fsync)")
     print(f"  less statistics   median {statistics.median(outside_cpu) * 1e3:7.2f} ms   "
           f"best {min(outside_cpu) * 1e3:7.2f} ms   (CPU of this process, every thread)")
+    cpu = statistics.median(outside_cpu)
+    print(f"  target ≤ {TARGET_MS:g} ms outside the statistics: median CPU is "
+          f"{cpu * 1e3 / TARGET_MS:.2f}× the target ({'met' if cpu * 1e3 <= TARGET_MS else 'not met'}; "
+          f"the HTTP layer comes on top, see benchmarks/service.py)")
     print(f"  response body byte-identical to JSONResponse(the record read back later): "
           f"{'yes' if same_response else 'NO'}")
     failures += not same_response

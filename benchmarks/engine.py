@@ -8,7 +8,11 @@ In-process times are best of REPEATS, our runs and scipy's alternating; "ours" u
 this process may use, "1 core" is the same call with the process pinned to one core.
 Whole-process times are best of PROCESS_REPEATS runs of a fresh interpreter (imports, compiled
 code loading and all); the marginal cost per replicate is the time at B = 1,000,000 minus the
-time at B = 1,000, over the 999,000 replicates between them.
+time at B = 1,000, over the 999,000 replicates between them. A process draws a short run in
+plain numpy and loads the compiled loops only for a long one (service/stats/kernels.py), so the
+plain difference also holds that one-off loading (about half a second); the second line of ours
+loads the compiled loops in both runs, so that the difference is the replicates' cost alone, and
+the target is checked on it.
 """
 
 from __future__ import annotations
@@ -58,6 +62,9 @@ sys.path.insert(0, {str(ROOT)!r})
 import numpy as np
 from service.stats.ratio import analyse_ratio
 values = np.random.default_rng({PROCESS_N}).normal([42.0, 40.0, 15.0], 4.0, size=({PROCESS_N}, 3))
+if sys.argv[2:] == ["compiled"]:
+    from service.stats import kernels
+    kernels.load_compiled()  # from here on every run draws compiled, as in the service
 a = analyse_ratio(values, replicates=int(sys.argv[1]), seed=3, confidence_level=0.9,
                   interval="bca", limits=(-0.2, 0.2))
 print(a.bootstrap.intervals.bca)
@@ -107,27 +114,37 @@ def _scipy_statistic(t: NDArray[np.float64], r: NDArray[np.float64], b: NDArray[
     return theta_of_means(np.stack([t.mean(axis), r.mean(axis), b.mean(axis)], axis=-1))
 
 
-def _process(script: str, replicates: int) -> Callable[[], object]:
+def _process(script: str, replicates: int, *extra: str) -> Callable[[], object]:
     def run() -> object:
-        return subprocess.run([sys.executable, "-c", script, str(replicates)], check=True,
-                              capture_output=True)
+        return subprocess.run([sys.executable, "-c", script, str(replicates), *extra],
+                              check=True, capture_output=True)
     return run
 
 
 def _whole_processes() -> int:
     small, large = PROCESS_SIZES
-    runs = [_process(script, b) for script in (OURS_PROCESS, SCIPY_PROCESS) for b in (small, large)]
-    ours_small, ours_large, scipy_small, scipy_large = _best(runs, PROCESS_REPEATS)
-    ours = (ours_large - ours_small) / (large - small)
-    theirs = (scipy_large - scipy_small) / (large - small)
-    ratio = ours / theirs
-    verdict = "PASS" if ratio <= TARGET_MARGINAL_RATIO else "FAIL"
+    runs = [_process(OURS_PROCESS, b) for b in (small, large)]
+    runs += [_process(OURS_PROCESS, b, "compiled") for b in (small, large)]
+    runs += [_process(SCIPY_PROCESS, b) for b in (small, large)]
+    times = _best(runs, PROCESS_REPEATS)
+    span = large - small
+    theirs = (times[5] - times[4]) / span
     print(f"\nwhole process, n = {PROCESS_N}, three-arm θ, BCa (best of {PROCESS_REPEATS}; "
           f"scipy with batch={SCIPY_BATCH:,})")
-    print(f"{'':>8} {'B = ' + f'{small:,}':>14} {'B = ' + f'{large:,}':>16} {'µs per replicate':>18}")
-    print(f"{'ours':>8} {ours_small:>12.3f} s {ours_large:>14.3f} s {ours * 1e6:>18.3f}")
-    print(f"{'scipy':>8} {scipy_small:>12.3f} s {scipy_large:>14.3f} s {theirs * 1e6:>18.3f}")
-    print(f"marginal cost ratio {ratio:.3f}  target ≤ {TARGET_MARGINAL_RATIO}  {verdict}")
+    print(f"{'':>16} {'B = ' + f'{small:,}':>12} {'B = ' + f'{large:,}':>14} "
+          f"{'µs per replicate':>18} {'ratio':>7}")
+    labels = ("ours", "ours, compiled", "scipy")
+    ratios = []
+    for row, label in enumerate(labels):
+        first, second = times[2 * row], times[2 * row + 1]
+        per_replicate = (second - first) / span
+        ratios.append(per_replicate / theirs)
+        print(f"{label:>16} {first:>10.3f} s {second:>12.3f} s {per_replicate * 1e6:>18.3f} "
+              f"{ratios[-1]:>7.3f}")
+    verdict = "PASS" if ratios[1] <= TARGET_MARGINAL_RATIO else "FAIL"
+    print(f"marginal cost ratio {ratios[1]:.3f} with the compiled loops loaded in both runs "
+          f"(target ≤ {TARGET_MARGINAL_RATIO})  {verdict}; {ratios[0]:.3f} when the short run "
+          f"draws in plain numpy and the long one pays the loading")
     return verdict == "FAIL"
 
 

@@ -3,7 +3,7 @@
 Starts `python -m service serve` on 127.0.0.1 (a free port, a temporary SQLite archive), sends a
 fixed number of requests from a few concurrent clients, prints a table, stops the server.
 
-    .venv/bin/python benchmarks/service.py [--posts 48] [--health 2000] [--clients 8]
+    .venv/bin/python benchmarks/service.py [--posts 240] [--health 2000] [--clients 8]
 """
 
 from __future__ import annotations
@@ -47,7 +47,10 @@ class Measurement:
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--posts", type=int, default=48, help="POST /v1/analyses requests")
+    parser.add_argument(
+        "--posts", type=int, default=240,
+        help="POST /v1/analyses requests (enough that the first second, while the clients "
+             "start and the server settles, does not decide the rate)")
     parser.add_argument("--health", type=int, default=2000, help="GET /healthz requests")
     parser.add_argument("--clients", type=int, default=8, help="concurrent client threads")
     parser.add_argument("--time-limit", type=float, default=180.0, help="seconds per phase")
