@@ -4,8 +4,8 @@
    object, runs alternating, best of REPEATS; the bytes must be identical.
 2. The record path of POST /v1/analyses — reading the body (parse and validate) → build_record →
    Archive.insert (SQLite in a temporary folder) → the response body — less the time spent inside
-   the statistics (every service.stats
-   function the record modules call, except the *_to_json converters, which are record assembly).
+   the statistics (every service.stats function the record modules call, except the *_to_json
+   converters, which are record assembly), as wall time and as CPU time, against the 2 ms budget.
 
 Run: .venv/bin/python benchmarks/canonical.py   (a script, not a test)
 """
