@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import hashlib
 import json
-import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
+import orjson
 import rfc8785
 
 # RFC 8785 section 3.2.2.3 writes every number as an IEEE 754 double in its shortest form, so a
@@ -22,16 +22,12 @@ _LARGEST_INTEGER = 2**53 - 1  # rfc8785 refuses ints outside ±(2**53 - 1); so d
 # exactly as they do there (records are a handful of levels deep).
 _FAST_DEPTH = 64
 
-# Python's C encoder with these options escapes strings exactly as RFC 8785 section 3.2.2.2 asks:
-# only '"', '\\' and U+0000..U+001F, as \b \f \n \r \t or \u00xx in lowercase hex.
-_ENCODER = json.JSONEncoder(
-    ensure_ascii=False, allow_nan=False, sort_keys=True, separators=(",", ":"), check_circular=False
-)
-# A value the C encoder cannot write as RFC 8785 wants goes in as the string lone-low-surrogate +
-# index and is spliced back after encoding. RFC 8785 text never holds a lone surrogate (rfc8785
-# refuses them), so the marks are told apart from the caller's strings by their count.
-_MARK = "\udc00"
-_MARKED = re.compile(f'"{_MARK}([0-9]+)"')
+# orjson writes strings exactly as RFC 8785 section 3.2.2.2 asks (only '"', '\\' and
+# U+0000..U+001F escaped, as \b \f \n \r \t or \u00xx in lowercase hex; checked for every
+# character by tests/records/test_hashing.py) and, with OPT_SORT_KEYS, orders members by code
+# point. It writes a float in its own layout, so _prepared hands it only floats whose layout
+# agrees with RFC 8785, and the rest as ints or as finished text (orjson.Fragment).
+_SORTED = orjson.OPT_SORT_KEYS
 
 
 @dataclass(frozen=True, slots=True)
@@ -59,25 +55,19 @@ def canonical_json(obj: Any) -> bytes:
     """RFC 8785 (JSON Canonicalization Scheme) serialisation: the bytes of rfc8785.dumps, and its
     errors, at a fraction of its cost.
 
-    The fast path rewrites the value for Python's C JSON encoder and splices a few numbers back;
+    The fast path rewrites the value for orjson (exact types, a few numbers as finished text);
     anything it is not sure of (types other than exactly dict, list, tuple, str, int, float, bool
     and None, so subclasses too; keys that are not str or hold characters above U+FFFF; integers
     outside ±(2**53 - 1); NaN and infinities; lone surrogates; deep nesting) goes to
     rfc8785.dumps, which then gives the answer or the error."""
-    pieces: list[str] = []
     try:
-        text = _ENCODER.encode(_prepared(obj, pieces, 0))
-        if pieces:
-            text, count = _MARKED.subn(lambda match: pieces[int(match[1])], text)
-            if count != len(pieces):
-                raise _NotFast
-        return text.encode("utf-8")
-    except (_NotFast, ValueError, IndexError, RecursionError):  # UnicodeEncodeError: lone surrogates
+        return orjson.dumps(_prepared(obj, 0), option=_SORTED)
+    except (_NotFast, TypeError, RecursionError):  # orjson.JSONEncodeError is a TypeError
         return bytes(rfc8785.dumps(_expanded(obj)))
 
 
-def _prepared(obj: Any, pieces: list[str], depth: int) -> Any:
-    """`obj` with every float the C encoder would write differently replaced (see _number)."""
+def _prepared(obj: Any, depth: int) -> Any:
+    """`obj` with every float orjson would write differently replaced (see _number)."""
     kind = type(obj)
     if kind is dict:
         if depth > _FAST_DEPTH:
@@ -93,11 +83,11 @@ def _prepared(obj: Any, pieces: list[str], depth: int) -> Any:
             if kind is str or kind is bool or value is None:
                 prepared[key] = value
             elif kind is float:
-                prepared[key] = _number(value, pieces)
+                prepared[key] = _number(value)
             elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
                 prepared[key] = value
             else:
-                prepared[key] = _prepared(value, pieces, depth + 1)
+                prepared[key] = _prepared(value, depth + 1)
         return prepared
     if kind is list or kind is tuple:
         if depth > _FAST_DEPTH:
@@ -108,49 +98,43 @@ def _prepared(obj: Any, pieces: list[str], depth: int) -> Any:
             if kind is str or kind is bool or value is None:
                 items.append(value)
             elif kind is float:
-                items.append(_number(value, pieces))
+                items.append(_number(value))
             elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
                 items.append(value)
             else:
-                items.append(_prepared(value, pieces, depth + 1))
+                items.append(_prepared(value, depth + 1))
         return items
     if kind is str or kind is bool or obj is None:
         return obj
     if kind is float:
-        return _number(obj, pieces)
+        return _number(obj)
     if kind is int and -_LARGEST_INTEGER <= obj <= _LARGEST_INTEGER:
         return obj
     if kind is CanonicalText:
-        return _marked(obj.text, pieces)
+        return orjson.Fragment(obj.text)
     raise _NotFast
 
 
-def _number(value: float, pieces: list[str]) -> float | int | str:
-    """What to hand the C encoder, which writes a float as repr() does, for the RFC 8785 text.
+def _number(value: float) -> float | int | orjson.Fragment:
+    """What to hand orjson for the RFC 8785 text of a float.
 
-    RFC 8785 section 3.2.2.3 (ECMAScript Number::toString) and repr() pick the same shortest
-    digits; they differ in layout only. repr() writes x = 0.d1..dk × 10**n in fixed notation
-    for -4 < n <= 16 and ECMAScript for -6 < n <= 21, and ECMAScript drops the ".0" of an
-    integral value and writes "-0" as "0". So: an integral double below 2**53 in magnitude is
-    the int of the same value (exact there, and its digits are the shortest); a non-integral
-    finite one with 1e-4 <= |x| (hence n >= -3; it is below 2**53, so n <= 16) is written alike
-    by both; the rest — |x| < 1e-4, integral |x| >= 2**53, NaN and infinities — rfc8785 writes
-    (or refuses)."""
+    RFC 8785 section 3.2.2.3 (ECMAScript Number::toString) and orjson pick the same shortest
+    digits (as repr() does); they differ in layout only. Writing x = 0.d1..dk × 10**n, orjson
+    uses fixed notation for -5 < n <= 16 (checked by the tests against rfc8785), ECMAScript for
+    -6 < n <= 21, and ECMAScript drops the ".0" of an integral value and writes "-0" as "0".
+    So: an integral double below 2**53 in magnitude is the int of the same value (exact there,
+    and its digits are the shortest); a non-integral finite one with 1e-4 <= |x| (hence
+    n >= -3; it is below 2**53, so n <= 16) is written alike by both; the rest — |x| < 1e-4,
+    integral |x| >= 2**53, NaN and infinities — rfc8785 writes (or refuses)."""
     if value.is_integer():
         if -_SAFE_INTEGER < value < _SAFE_INTEGER:
             return int(value)
     elif 1e-4 <= value < _SAFE_INTEGER or -_SAFE_INTEGER < value <= -1e-4:
         return value
     try:
-        text = rfc8785.dumps(value).decode("ascii")
+        return orjson.Fragment(rfc8785.dumps(value))
     except rfc8785.CanonicalizationError:
         raise _NotFast from None
-    return _marked(text, pieces)
-
-
-def _marked(text: str, pieces: list[str]) -> str:
-    pieces.append(text)
-    return f"{_MARK}{len(pieces) - 1}"
 
 
 def _expanded(obj: Any) -> Any:

@@ -299,3 +299,27 @@ def test_reading_back_without_the_integer_hook_changes_no_type(value: Any) -> No
     expected = json.loads(text, parse_int=_parse_int)
     assert _typed(load_canonical(text)) == _typed(expected)
     assert _typed(load_canonical(text.decode("utf-8"))) == _typed(expected)
+
+
+def test_every_character_is_written_as_the_rfc8785_package_writes_it() -> None:
+    """RFC 8785 §3.2.2.2: a string escapes only '"', '\\' and U+0000..U+001F (as \\b \\f \\n \\r
+    \\t or \\u00xx, lowercase hex) and writes every other character as it is. Every code point
+    outside the surrogates, alone, as a key and in a longer string, against the rfc8785 package."""
+    characters = [chr(c) for c in range(0x110000) if not 0xD800 <= c <= 0xDFFF]
+    for start in range(0, len(characters), 4096):
+        chunk = characters[start:start + 4096]
+        text = "".join(chunk)
+        assert canonical_json(chunk) == rfc8785.dumps(chunk)
+        assert canonical_json({"k": text, text[:64]: 1}) == rfc8785.dumps({"k": text, text[:64]: 1})
+
+
+@pytest.mark.parametrize("exponent", range(-330, 310))
+def test_doubles_near_every_power_of_ten_as_the_rfc8785_package(exponent: int) -> None:
+    """Where fixed and exponent layouts meet (ECMAScript Number::toString switches at 1e-6 and
+    1e21): 10**e and its neighbours one unit in the last place away, both signs, against the
+    rfc8785 package."""
+    power = float(f"1e{exponent}")
+    doubles = [x for x in (math.nextafter(power, 0.0), power, math.nextafter(power, math.inf),
+                           power * 1.5, power * 9.999999999999998) if math.isfinite(x)]
+    doubles += [-x for x in doubles]
+    assert canonical_json(doubles) == rfc8785.dumps(doubles)
