@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from service.intake.problems import InvalidRequest, format_loc
-from service.intake.reading import BodyKind, read_request
+from service.intake.reading import BodyKind, read_request_and_tables
 from service.records.building import build_record
 from service.report.rendering import render_report
 
@@ -31,8 +31,8 @@ def run_analyze(request: str, out: str | Path, settings: Mapping[str, str], form
               "inside", file=sys.stderr)
         return EXIT_INVALID
     try:
-        inputs = read_request(kind, body, settings)
-        record = build_record(inputs)
+        inputs, tables = read_request_and_tables(kind, body, settings)
+        record = build_record(inputs, tables=tables)
     except InvalidRequest as exc:
         what = "table" if kind == "csv" else "request"
         print(f"error: the {what} is invalid ({len(exc.problems)} problem(s)):", file=sys.stderr)

@@ -60,40 +60,40 @@ def check_consistency(records: Items, profiles: Items) -> list[Problem]:
     Subjects sharing a label: one treatment order.
     """
     problems: list[Problem] = []
-    # (subject, period) -> (treatment, source, where); source is the metric, or "" for profiles
-    treatment_of: dict[tuple[str, int], tuple[str, str, str]] = {}
-    label_of: dict[str, tuple[str, str]] = {}
-    label_loc: dict[str, tuple[str, int]] = {}
+    # (subject, period) -> (treatment, source, key, index); source is the metric, or "" for
+    # profiles; key and index say where (written out only for a problem)
+    treatment_of: dict[tuple[str, int], tuple[str, str, str, int]] = {}
+    label_of: dict[str, tuple[str, str, int]] = {}
     rows = [("records", i, r, r.metric) for i, r in records]
     rows += [("profiles", i, p, "") for i, p in profiles]
     for key, index, row, source in rows:
-        here = _where(key, index)
         # Within one metric of the records, a clash is a duplicate and is reported as one.
-        first_t = treatment_of.setdefault((row.subject, row.period), (row.treatment, source, here))
+        first_t = treatment_of.setdefault((row.subject, row.period),
+                                          (row.treatment, source, key, index))
         if first_t[0] != row.treatment and not (key == "records" and first_t[1] == source):
             problems.append(Problem((key, index, "treatment"),
                                     f"subject {row.subject!r} received {first_t[0]!r} in period "
-                                    f"{row.period} according to {first_t[2]}, but "
-                                    f"{row.treatment!r} here"))
+                                    f"{row.period} according to {_where(first_t[2], first_t[3])}, "
+                                    f"but {row.treatment!r} here"))
         if row.sequence is not None:
-            first_l = label_of.setdefault(row.subject, (row.sequence, here))
-            label_loc.setdefault(row.subject, (key, index))
+            first_l = label_of.setdefault(row.subject, (row.sequence, key, index))
             if first_l[0] != row.sequence:
                 problems.append(Problem((key, index, "sequence"),
                                         f"subject {row.subject!r} has sequence label "
-                                        f"{first_l[0]!r} in {first_l[1]} but {row.sequence!r} "
-                                        "here"))
+                                        f"{first_l[0]!r} in {_where(first_l[1], first_l[2])} but "
+                                        f"{row.sequence!r} here"))
+    label_loc = {subject: (key, index) for subject, (_, key, index) in label_of.items()}
     problems.extend(_check_shared_labels(treatment_of, label_of, label_loc))
     return problems
 
 
 def _check_shared_labels(
-    treatment_of: dict[tuple[str, int], tuple[str, str, str]],
-    label_of: dict[str, tuple[str, str]],
+    treatment_of: dict[tuple[str, int], tuple[str, str, str, int]],
+    label_of: dict[str, tuple[str, str, int]],
     label_loc: dict[str, tuple[str, int]],
 ) -> list[Problem]:
     plan: dict[str, dict[int, str]] = {}
-    for (subject, period), (treatment, _, _) in treatment_of.items():
+    for (subject, period), (treatment, *_) in treatment_of.items():
         plan.setdefault(subject, {})[period] = treatment
 
     def order(subject: str) -> str:

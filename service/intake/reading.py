@@ -11,7 +11,7 @@ from typing import Any, Literal
 
 from service.intake.csvinput import parse_csv_with_lines, relocate_to_lines
 from service.intake.problems import InvalidRequest, Problem, parse_json_body
-from service.intake.tables import normalize_request
+from service.intake.tables import MetricTable, normalize_request_and_tables
 
 BodyKind = Literal["json", "csv"]
 
@@ -19,11 +19,20 @@ BodyKind = Literal["json", "csv"]
 def read_request(
     kind: BodyKind, body: bytes, settings: Mapping[str, str], *, max_records: int | None = None
 ) -> dict[str, Any]:
+    """Normalized inputs of a JSON body, or of a CSV body with its settings as flat text values
+    (read_request_and_tables without the tables)."""
+    return read_request_and_tables(kind, body, settings, max_records=max_records)[0]
+
+
+def read_request_and_tables(
+    kind: BodyKind, body: bytes, settings: Mapping[str, str], *, max_records: int | None = None
+) -> tuple[dict[str, Any], list[MetricTable] | None]:
     """Normalized inputs of a JSON body, or of a CSV body with its settings as flat text values.
 
     Every problem is raised at once as InvalidRequest; problems found after CSV parsing name the
     CSV line (and column) they come from. `settings` must be empty for JSON bodies, which carry
-    their settings inside.
+    their settings inside. The tables are the ones the checks built (see
+    normalize_request_and_tables), for build_record_and_texts(inputs, tables=...).
     """
     lines: list[int] | None = None
     if kind == "csv":
@@ -41,7 +50,7 @@ def read_request(
     if max_records is not None:
         check_row_count(raw, max_records)
     try:
-        return normalize_request(raw)
+        return normalize_request_and_tables(raw)
     except InvalidRequest as exc:
         if lines is None:
             raise

@@ -36,21 +36,28 @@ def engine_versions() -> dict[str, str]:
 
 
 def build_record(
-    inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None
+    inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None,
+    tables: Sequence[MetricTable] | None = None,
 ) -> dict[str, Any]:
     """The record without `id`/`created_at` (the archive adds those). `threads` caps the
-    bootstrap's threads (None: every core this process may use); no number depends on it."""
-    return build_record_and_texts(inputs, deadline=deadline, threads=threads)[0]
+    bootstrap's threads (None: every core this process may use); no number depends on it.
+    `tables` as for build_record_and_texts."""
+    return build_record_and_texts(inputs, deadline=deadline, threads=threads, tables=tables)[0]
 
 
 def build_record_and_texts(
-    inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None
+    inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None,
+    tables: Sequence[MetricTable] | None = None,
 ) -> tuple[dict[str, Any], RecordTexts | None]:
     """build_record, with the canonical JSON of its inputs and result (made once here: the
     inputs hash and the finiteness check need them anyway) for Archive.insert; None where the
-    result has no canonical form (the archive then refuses it, naming the problem)."""
+    result has no canonical form (the archive then refuses it, naming the problem).
+
+    `tables`: build_tables(inputs) made already, as read_request_and_tables hands them on with
+    the very `inputs` it returned (unchanged since); used only for a request without profiles,
+    where they are the tables the record is built from."""
     inputs_text = canonical_json(inputs)
-    result, result_text = _result_and_text(inputs, deadline, threads)
+    result, result_text = _result_and_text(inputs, deadline, threads, tables)
     record = {"inputs_sha256": sha256_hex(inputs_text), "inputs": inputs, "result": result}
     return record, None if result_text is None else RecordTexts(inputs_text, result_text)
 
@@ -64,14 +71,18 @@ def compute_result(
 
 
 def _result_and_text(
-    inputs: dict[str, Any], deadline: float | None, threads: int | None
+    inputs: dict[str, Any], deadline: float | None, threads: int | None,
+    given_tables: Sequence[MetricTable] | None = None,
 ) -> tuple[dict[str, Any], bytes | None]:
     warnings: list[dict[str, Any]] = []
     # Every phase honours the compute-time cap, not only the bootstrap loop.
     check_deadline(deadline, "the concentration–time profiles", 0, 3)
     derived = derive_profile_metrics(inputs, deadline=deadline)
     check_deadline(deadline, "building the tables", 1, 3)
-    tables = build_tables(inputs, extra_records=derived.records)
+    if given_tables is not None and not derived.records and not inputs.get("profiles"):
+        tables = list(given_tables)
+    else:
+        tables = build_tables(inputs, extra_records=derived.records)
 
     metrics: list[dict[str, Any]] = []
     for table in tables:

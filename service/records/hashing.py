@@ -17,6 +17,8 @@ import rfc8785
 # refuses (beyond the I-JSON range, RFC 7493 section 2.2); load_canonical reads them as the double.
 _SAFE_INTEGER = 2**53
 _LARGEST_INTEGER = 2**53 - 1  # rfc8785 refuses ints outside ±(2**53 - 1); so does the fast path
+_SAFE_DOUBLE = float(_SAFE_INTEGER)
+_ABOVE_BMP_LEADS = (b"\xf0", b"\xf1", b"\xf2", b"\xf3", b"\xf4")  # bytes.__contains__: memchr-fast
 
 # Values nested deeper than this go to the reference serialiser, so that recursion limits behave
 # exactly as they do there (records are a handful of levels deep).
@@ -57,33 +59,43 @@ def canonical_json(obj: Any) -> bytes:
 
     The fast path rewrites the value for orjson (exact types, a few numbers as finished text);
     anything it is not sure of (types other than exactly dict, list, tuple, str, int, float, bool
-    and None, so subclasses too; keys that are not str or hold characters above U+FFFF; integers
+    and None, so subclasses too; keys that are not str; text holding characters above U+FFFF; integers
     outside ±(2**53 - 1); NaN and infinities; lone surrogates; deep nesting) goes to
     rfc8785.dumps, which then gives the answer or the error."""
     try:
-        return orjson.dumps(_prepared(obj, 0), option=_SORTED)
+        text = orjson.dumps(_prepared(obj, 0), option=_SORTED)
     except (_NotFast, TypeError, RecursionError):  # orjson.JSONEncodeError is a TypeError
         return bytes(rfc8785.dumps(_expanded(obj)))
+    # orjson sorts keys by code point, RFC 8785 section 3.2.3 by UTF-16 code unit; the two
+    # orders differ only for characters above U+FFFF (surrogate pairs sort below U+E000..U+FFFF),
+    # whose UTF-8 form, alone, starts with a byte F0..F4: text holding one goes to the reference.
+    if not text.isascii() and any(lead in text for lead in _ABOVE_BMP_LEADS):
+        return bytes(rfc8785.dumps(_expanded(obj)))
+    return text
 
 
 def _prepared(obj: Any, depth: int) -> Any:
-    """`obj` with every float orjson would write differently replaced (see _number)."""
+    """`obj` with every float orjson would write differently replaced (see _number; its two
+    common cases are written out in the loops, which run once per value of a record)."""
     kind = type(obj)
     if kind is dict:
         if depth > _FAST_DEPTH:
             raise _NotFast
         prepared: dict[str, Any] = {}
         for key, value in obj.items():
-            # Python sorts keys by code point, RFC 8785 section 3.2.3 by UTF-16 code unit; the two
-            # orders differ only for characters above U+FFFF (surrogate pairs sort below
-            # U+E000..U+FFFF), so keys holding one go to the reference.
-            if type(key) is not str or not key.isascii() and max(key) > "\uffff":
+            if type(key) is not str:
                 raise _NotFast
             kind = type(value)
-            if kind is str or kind is bool or value is None:
+            if kind is float:
+                if value.is_integer():
+                    prepared[key] = (int(value) if -_SAFE_DOUBLE < value < _SAFE_DOUBLE
+                                     else _number(value))
+                elif 1e-4 <= value < _SAFE_DOUBLE or -_SAFE_DOUBLE < value <= -1e-4:
+                    prepared[key] = value
+                else:
+                    prepared[key] = _number(value)
+            elif kind is str or kind is bool or value is None:
                 prepared[key] = value
-            elif kind is float:
-                prepared[key] = _number(value)
             elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
                 prepared[key] = value
             else:
@@ -95,10 +107,16 @@ def _prepared(obj: Any, depth: int) -> Any:
         items: list[Any] = []
         for value in obj:
             kind = type(value)
-            if kind is str or kind is bool or value is None:
+            if kind is float:
+                if value.is_integer():
+                    items.append(int(value) if -_SAFE_DOUBLE < value < _SAFE_DOUBLE
+                                 else _number(value))
+                elif 1e-4 <= value < _SAFE_DOUBLE or -_SAFE_DOUBLE < value <= -1e-4:
+                    items.append(value)
+                else:
+                    items.append(_number(value))
+            elif kind is str or kind is bool or value is None:
                 items.append(value)
-            elif kind is float:
-                items.append(_number(value))
             elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
                 items.append(value)
             else:

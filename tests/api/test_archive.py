@@ -155,6 +155,55 @@ def test_concurrent_appends_form_one_chain(archive: Archive) -> None:
     assert archive.verify_chain() == []
 
 
+def test_a_failed_append_leaves_nothing_and_releases_the_lock(
+    archive: Archive, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """An append that fails inside its transaction stores no row, and the write lock is free
+    again: another connection can take it at once and the next append joins the chain (SQLite
+    transactions, sqlite.org/lang_transaction.html: ROLLBACK undoes the transaction's writes)."""
+    from service.archive import store
+
+    first = archive.insert(small_record(1))
+
+    def failing_hash(**_: Any) -> str:
+        raise RuntimeError("disk went away")
+
+    monkeypatch.setattr(store, "record_hash", failing_hash)
+    with pytest.raises(RuntimeError, match="disk went away"):
+        archive.insert(small_record(2))
+    with pytest.raises(RuntimeError, match="disk went away"):
+        archive.insert_once(small_record(3), submitter="lab-1", idempotency_key="k-1",
+                            request_sha256="f" * 64)
+    monkeypatch.undo()
+    with sqlite3.connect(tmp_path / "store" / "a.sqlite3", timeout=0) as other:
+        other.execute("BEGIN IMMEDIATE")  # would raise "database is locked" if still held
+        assert other.execute("SELECT count(*) FROM records").fetchone() == (1,)
+        assert other.execute("SELECT count(*) FROM idempotency_keys").fetchone() == (0,)
+        other.execute("ROLLBACK")
+    second = archive.insert(small_record(2))
+    assert second["previous_record_sha256"] == first["record_sha256"]
+    assert archive.verify_chain() == []
+
+
+def test_a_replayed_key_answers_the_first_record_as_read_back(archive: Archive) -> None:
+    """A second request under one Idempotency-Key gets the first record (read back from its
+    stored texts), and a different request under it is refused (common practice for
+    idempotent POST, IETF draft-ietf-httpapi-idempotency-key-header)."""
+    from service.archive.store import IdempotencyConflict
+
+    made, replayed = archive.insert_once(small_record(5), submitter="lab-2",
+                                         idempotency_key="k-9", request_sha256="a" * 64)
+    again, replayed_again = archive.insert_once(small_record(5), submitter="lab-2",
+                                                idempotency_key="k-9", request_sha256="a" * 64)
+    assert (replayed, replayed_again) == (False, True)
+    assert again == archive.get(made["id"]) == made
+    assert again.json_text == made.json_text
+    with pytest.raises(IdempotencyConflict):
+        archive.insert_once(small_record(6), submitter="lab-2", idempotency_key="k-9",
+                            request_sha256="b" * 64)
+    assert archive.list()[1] == 1
+
+
 def test_tampering_is_detected(archive: Archive, tmp_path: Path) -> None:
     """Changing a stored result breaks its record hash (SHA-256 collision resistance,
     FIPS 180-4)."""
