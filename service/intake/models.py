@@ -16,6 +16,8 @@ JSON_SAFE_INTEGER_LIMIT = 2**53
 
 
 def _encodable(text: str) -> str:
+    if text.isascii():  # no surrogate is ASCII; the common case, checked without encoding
+        return text
     try:
         text.encode("utf-8")
     except UnicodeEncodeError:
@@ -25,7 +27,8 @@ def _encodable(text: str) -> str:
 
 
 def _label(text: str) -> str:
-    _encodable(text)
+    if not text.isascii():
+        _encodable(text)
     if not text.strip():
         raise ValueError("must be a non-empty label, got " + ("an empty string" if not text
                                                               else "only whitespace"))

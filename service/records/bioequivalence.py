@@ -105,7 +105,7 @@ def _crossover(
     abe = average_bioequivalence(
         subjects=[s for s in table.subjects for _ in range(columns)],
         sequences=[q for q in table.sequences for _ in range(columns)],
-        periods=[int(p) for p in table.periods[:, :columns].reshape(-1)],
+        periods=table.periods[:, :columns].reshape(-1).tolist(),
         treatments=[t for _ in range(n) for t in table.treatments[:columns]],
         values=table.values[:, :columns].reshape(-1),
         **options,

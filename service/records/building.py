@@ -244,19 +244,18 @@ def _per_subject(table: MetricTable, ratio_json: Mapping[str, Any]) -> list[dict
     jackknife = {v["subject"]: v["theta"] for v in ratio_json["jackknife"]["values"]}
     rows = []
     has_baseline = table.values.shape[1] == 3
-    for i, subject in enumerate(table.subjects):
-        t, r = float(table.values[i, 0]), float(table.values[i, 1])
-        z = r - float(table.values[i, 2]) if has_baseline else r
+    # tolist(): the same Python floats and ints as float()/int() of each element, made at once
+    values, periods = table.values.tolist(), table.periods.tolist()
+    for subject, sequence, own, own_periods in zip(table.subjects, table.sequences, values,
+                                                   periods, strict=True):
+        t, r = own[0], own[1]
+        z = r - own[2] if has_baseline else r
         rows.append(
             {
                 "subject": subject,
-                "sequence": table.sequences[i],
-                "values": {
-                    label: float(table.values[i, j]) for j, label in enumerate(table.treatments)
-                },
-                "periods": {
-                    label: int(table.periods[i, j]) for j, label in enumerate(table.treatments)
-                },
+                "sequence": sequence,
+                "values": dict(zip(table.treatments, own, strict=True)),
+                "periods": dict(zip(table.treatments, own_periods, strict=True)),
                 "numerator_difference": t - r,
                 "denominator_difference": z,
                 "jackknife_theta": jackknife.get(subject),
