@@ -253,8 +253,8 @@ def _check_treatments(
     ]
 
 
-def _subject_orders(rows: Iterable[dict[str, Any]]) -> tuple[dict[str, str], dict[str, str]]:
-    """Per subject: the given sequence label, and the treatment order by period ("R-T-B")."""
+def _sequences_of(rows: Iterable[dict[str, Any]]) -> dict[str, str]:
+    """Per subject: the given sequence label, or else the treatment order by period ("R-T-B")."""
     labels: dict[str, str] = {}
     by_period: dict[str, dict[int, str]] = {}
     for row in rows:
@@ -262,8 +262,11 @@ def _subject_orders(rows: Iterable[dict[str, Any]]) -> tuple[dict[str, str], dic
         if row.get("sequence") is not None:
             labels.setdefault(subject, row["sequence"])
         by_period.setdefault(subject, {}).setdefault(row["period"], row["treatment"])
-    orders = {s: "-".join(t for _, t in sorted(plan.items())) for s, plan in by_period.items()}
-    return labels, orders
+    return {
+        subject: labels[subject] if subject in labels
+        else "-".join(t for _, t in sorted(plan.items()))
+        for subject, plan in by_period.items()
+    }
 
 
 def _missing_reason(missing: list[str]) -> str:
@@ -313,7 +316,7 @@ def build_tables(
     reject = inputs.get("settings", {}).get("incomplete_subjects", "exclude") == "reject"
     records = list(inputs.get("records", []))
     extras = list(extra_records)
-    labels, orders = _subject_orders([*records, *inputs.get("profiles", []), *extras])
+    sequence_of = _sequences_of([*records, *inputs.get("profiles", []), *extras])
     input_metrics = {r["metric"] for r in records}
 
     # metric -> subject -> treatment -> [(period, value)] in period order
@@ -331,7 +334,7 @@ def build_tables(
         ordered_subjects = sorted(cells_of)
         observations_list: list[Observation] = []
         for subject in ordered_subjects:
-            sequence = labels[subject] if subject in labels else orders[subject]
+            sequence = sequence_of[subject]
             observations_list.extend(
                 Observation(subject, sequence, period, treatment, value)
                 for period, treatment, value in sorted(
@@ -377,7 +380,7 @@ def build_tables(
                            dtype=np.int64).reshape(len(analysed), len(treatments))
         tables.append(MetricTable(
             metric=metric, treatments=treatments, subjects=tuple(analysed), values=values,
-            periods=periods, sequences=tuple(labels.get(s, orders[s]) for s in analysed),
+            periods=periods, sequences=tuple(sequence_of[s] for s in analysed),
             excluded=tuple(excluded), observations=observations,
         ))
     if problems:
