@@ -6,7 +6,7 @@ from __future__ import annotations
 import json
 import sqlite3
 import uuid
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -497,21 +497,19 @@ def _for_sqlite(statement: Any, **kwargs: Any) -> _Compiled:
     return _Compiled(compiled.string, tuple(compiled.positiontup or ()))
 
 
-_RECORD_KEYS_STORED = ("id", "created_at", "inputs_sha256", "inputs", "result", "engine",
-                       "submitter", "record_sha256", "previous_record_sha256")
-_KEY_COLUMNS = ("submitter", "idempotency_key", "request_sha256", "record_id", "created_at")
+# Every column but seq (which SQLite numbers), as _append fills them.
+_STORED_COLUMNS = [column.name for column in records.c if column.name != "seq"]
+_KEY_ROW = select(idempotency_keys.c.request_sha256, idempotency_keys.c.record_id).where(
+    idempotency_keys.c.submitter == bindparam("submitter"),
+    idempotency_keys.c.idempotency_key == bindparam("idempotency_key"),
+)
+_RECORD_BY_ID = select(*_RECORD_COLUMNS).where(records.c.id == bindparam("record_id"))
 _SQLITE_HEAD = _for_sqlite(_HEAD_HASH, compile_kwargs={"literal_binds": True})
-_SQLITE_INSERT_RECORD = _for_sqlite(_INSERT_RECORD, column_keys=list(_RECORD_KEYS_STORED))
-_SQLITE_INSERT_KEY = _for_sqlite(idempotency_keys.insert(), column_keys=list(_KEY_COLUMNS))
-_SQLITE_KEY_ROW = _for_sqlite(
-    select(idempotency_keys.c.request_sha256, idempotency_keys.c.record_id).where(
-        idempotency_keys.c.submitter == bindparam("submitter"),
-        idempotency_keys.c.idempotency_key == bindparam("idempotency_key"),
-    )
-)
-_SQLITE_RECORD_BY_ID = _for_sqlite(
-    select(*_RECORD_COLUMNS).where(records.c.id == bindparam("record_id"))
-)
+_SQLITE_INSERT_RECORD = _for_sqlite(_INSERT_RECORD, column_keys=_STORED_COLUMNS)
+_SQLITE_INSERT_KEY = _for_sqlite(idempotency_keys.insert(),
+                                 column_keys=[column.name for column in idempotency_keys.c])
+_SQLITE_KEY_ROW = _for_sqlite(_KEY_ROW)
+_SQLITE_RECORD_BY_ID = _for_sqlite(_RECORD_BY_ID)
 
 
 class _SqliteWriter:
@@ -531,39 +529,46 @@ class _SqliteWriter:
     def idempotent_row(self, submitter: str, key: str) -> Mapping[str, Any] | None:
         found = self._run(_SQLITE_KEY_ROW, {"submitter": submitter, "idempotency_key": key}
                           ).fetchone()
-        return None if found is None else {"request_sha256": found[0], "record_id": found[1]}
+        return None if found is None else dict(zip(_KEY_ROW.selected_columns.keys(), found,
+                                                   strict=True))
 
     def add_key(self, values: Mapping[str, Any]) -> None:
         self._run(_SQLITE_INSERT_KEY, values)
 
     def replay(self, earlier: Mapping[str, Any], request_sha256: str) -> StoredRecord:
-        if earlier["request_sha256"] != request_sha256:
-            raise IdempotencyConflict(earlier["record_id"])
-        found = self._run(_SQLITE_RECORD_BY_ID, {"record_id": earlier["record_id"]}).fetchone()
-        if found is None:
-            raise ArchiveError(f"record {earlier['record_id']} of an idempotency key is missing")
-        return _to_record(dict(zip((c.name for c in _RECORD_COLUMNS), found, strict=True)))
+        def row_of(record_id: str) -> Mapping[str, Any] | None:
+            found = self._run(_SQLITE_RECORD_BY_ID, {"record_id": record_id}).fetchone()
+            return None if found is None else dict(
+                zip(_RECORD_BY_ID.selected_columns.keys(), found, strict=True))
+
+        return _replayed(earlier, request_sha256, row_of)
 
 
 def _idempotent_row(conn: Connection, submitter: str, key: str) -> Mapping[str, Any] | None:
-    row = conn.execute(
-        select(idempotency_keys.c.request_sha256, idempotency_keys.c.record_id).where(
-            idempotency_keys.c.submitter == submitter,
-            idempotency_keys.c.idempotency_key == key,
-        )
-    ).first()
+    row = conn.execute(_KEY_ROW, {"submitter": submitter, "idempotency_key": key}).first()
     return None if row is None else row._asdict()
 
 
 def _replay(conn: Connection, earlier: Mapping[str, Any], request_sha256: str) -> StoredRecord:
+    def row_of(record_id: str) -> Mapping[str, Any] | None:
+        row = conn.execute(_RECORD_BY_ID, {"record_id": record_id}).first()
+        return None if row is None else row._asdict()
+
+    return _replayed(earlier, request_sha256, row_of)
+
+
+def _replayed(
+    earlier: Mapping[str, Any], request_sha256: str,
+    row_of: Callable[[str], Mapping[str, Any] | None],
+) -> StoredRecord:
+    """The record first archived under an idempotency key (`earlier`, its key row), read back;
+    IdempotencyConflict when this request's fingerprint differs."""
     if earlier["request_sha256"] != request_sha256:
         raise IdempotencyConflict(earlier["record_id"])
-    row = conn.execute(
-        select(*_RECORD_COLUMNS).where(records.c.id == earlier["record_id"])
-    ).first()
+    row = row_of(earlier["record_id"])
     if row is None:
         raise ArchiveError(f"record {earlier['record_id']} of an idempotency key is missing")
-    return _to_record(row._asdict())
+    return _to_record(row)
 
 
 def _columns_missing(engine: Engine) -> bool:

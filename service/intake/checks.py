@@ -82,15 +82,13 @@ def check_consistency(records: Items, profiles: Items) -> list[Problem]:
                                         f"subject {row.subject!r} has sequence label "
                                         f"{first_l[0]!r} in {_where(first_l[1], first_l[2])} but "
                                         f"{row.sequence!r} here"))
-    label_loc = {subject: (key, index) for subject, (_, key, index) in label_of.items()}
-    problems.extend(_check_shared_labels(treatment_of, label_of, label_loc))
+    problems.extend(_check_shared_labels(treatment_of, label_of))
     return problems
 
 
 def _check_shared_labels(
     treatment_of: dict[tuple[str, int], tuple[str, str, str, int]],
     label_of: dict[str, tuple[str, str, int]],
-    label_loc: dict[str, tuple[str, int]],
 ) -> list[Problem]:
     plan: dict[str, dict[int, str]] = {}
     for (subject, period), (treatment, *_) in treatment_of.items():
@@ -108,7 +106,7 @@ def _check_shared_labels(
             continue
         common = plan[subject].keys() & plan[model].keys()
         if any(plan[subject][p] != plan[model][p] for p in common):
-            key, index = label_loc[subject]
+            _, key, index = label_of[subject]
             problems.append(Problem((key, index, "sequence"),
                                     f"subjects {model} and {subject} share sequence label "
                                     f"{label!r} but received treatments in different orders: "

@@ -27,8 +27,7 @@ def _encodable(text: str) -> str:
 
 
 def _label(text: str) -> str:
-    if not text.isascii():
-        _encodable(text)
+    _encodable(text)
     if not text.strip():
         raise ValueError("must be a non-empty label, got " + ("an empty string" if not text
                                                               else "only whitespace"))

@@ -324,27 +324,21 @@ def build_tables(
     for row in [*records, *extras]:
         cells = by_metric.setdefault(row["metric"], {}).setdefault(row["subject"], {})
         cells.setdefault(row["treatment"], []).append((int(row["period"]), float(row["value"])))
-    design_treatments = frozenset(treatments)
 
     problems: list[Problem] = []
     tables: list[MetricTable] = []
     for metric in sorted(by_metric):
         where: Loc = ("records",) if metric in input_metrics else ("profiles",)
         cells_of = by_metric[metric]
-        ordered_subjects = sorted(cells_of)
-        observations_list: list[Observation] = []
-        for subject in ordered_subjects:
-            sequence = sequence_of[subject]
-            observations_list.extend(
-                Observation(subject, sequence, period, treatment, value)
-                for period, treatment, value in sorted(
-                    (period, treatment, value)
-                    for treatment, seen in cells_of[subject].items()
-                    if treatment in design_treatments
-                    for period, value in seen
-                )
+        observations = tuple(
+            Observation(subject, sequence_of[subject], period, treatment, value)
+            for subject in sorted(cells_of)
+            for period, treatment, value in sorted(
+                (period, treatment, value)
+                for treatment, seen in cells_of[subject].items() if treatment in treatments
+                for period, value in seen
             )
-        observations = tuple(observations_list)
+        )
         if _is_parallel(cells_of):
             problems.extend(_parallel_problems(metric, where, cells_of, design))
             tables.append(MetricTable(
@@ -356,7 +350,7 @@ def build_tables(
             continue
         analysed: list[str] = []
         excluded: list[ExcludedSubject] = []
-        for subject in ordered_subjects:
+        for subject in sorted(cells_of):
             cells = cells_of[subject]
             missing = [t for t in treatments if t not in cells]
             if not missing:
@@ -372,11 +366,9 @@ def build_tables(
             count = f"{len(analysed)} analysable subject" + ("" if len(analysed) == 1 else "s")
             problems.append(Problem(where, f"metric {metric!r}: only {count}; "
                                            f"at least 3 are needed"))
-        cell_rows = [[cells_of[s][t] for t in treatments] for s in analysed]
-        values = np.array([[seen[0][1] if len(seen) == 1 else _mean(seen) for seen in row]
-                           for row in cell_rows],
+        values = np.array([[_mean(cells_of[s][t]) for t in treatments] for s in analysed],
                           dtype=np.float64).reshape(len(analysed), len(treatments))
-        periods = np.array([[seen[0][0] for seen in row] for row in cell_rows],
+        periods = np.array([[cells_of[s][t][0][0] for t in treatments] for s in analysed],
                            dtype=np.int64).reshape(len(analysed), len(treatments))
         tables.append(MetricTable(
             metric=metric, treatments=treatments, subjects=tuple(analysed), values=values,

@@ -79,7 +79,7 @@ def _result_and_text(
     check_deadline(deadline, "the concentration–time profiles", 0, 3)
     derived = derive_profile_metrics(inputs, deadline=deadline)
     check_deadline(deadline, "building the tables", 1, 3)
-    if given_tables is not None and not derived.records and not inputs.get("profiles"):
+    if given_tables is not None and not derived.records:
         tables = list(given_tables)
     else:
         tables = build_tables(inputs, extra_records=derived.records)

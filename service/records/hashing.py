@@ -17,7 +17,6 @@ import rfc8785
 # refuses (beyond the I-JSON range, RFC 7493 section 2.2); load_canonical reads them as the double.
 _SAFE_INTEGER = 2**53
 _LARGEST_INTEGER = 2**53 - 1  # rfc8785 refuses ints outside ±(2**53 - 1); so does the fast path
-_SAFE_DOUBLE = float(_SAFE_INTEGER)
 _ABOVE_BMP_LEADS = (b"\xf0", b"\xf1", b"\xf2", b"\xf3", b"\xf4")  # bytes.__contains__: memchr-fast
 
 # Values nested deeper than this go to the reference serialiser, so that recursion limits behave
@@ -75,8 +74,7 @@ def canonical_json(obj: Any) -> bytes:
 
 
 def _prepared(obj: Any, depth: int) -> Any:
-    """`obj` with every float orjson would write differently replaced (see _number; its two
-    common cases are written out in the loops, which run once per value of a record)."""
+    """`obj` with every float orjson would write differently replaced (see _number)."""
     kind = type(obj)
     if kind is dict:
         if depth > _FAST_DEPTH:
@@ -87,13 +85,7 @@ def _prepared(obj: Any, depth: int) -> Any:
                 raise _NotFast
             kind = type(value)
             if kind is float:
-                if value.is_integer():
-                    prepared[key] = (int(value) if -_SAFE_DOUBLE < value < _SAFE_DOUBLE
-                                     else _number(value))
-                elif 1e-4 <= value < _SAFE_DOUBLE or -_SAFE_DOUBLE < value <= -1e-4:
-                    prepared[key] = value
-                else:
-                    prepared[key] = _number(value)
+                prepared[key] = _number(value)
             elif kind is str or kind is bool or value is None:
                 prepared[key] = value
             elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
@@ -108,13 +100,7 @@ def _prepared(obj: Any, depth: int) -> Any:
         for value in obj:
             kind = type(value)
             if kind is float:
-                if value.is_integer():
-                    items.append(int(value) if -_SAFE_DOUBLE < value < _SAFE_DOUBLE
-                                 else _number(value))
-                elif 1e-4 <= value < _SAFE_DOUBLE or -_SAFE_DOUBLE < value <= -1e-4:
-                    items.append(value)
-                else:
-                    items.append(_number(value))
+                items.append(_number(value))
             elif kind is str or kind is bool or value is None:
                 items.append(value)
             elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
