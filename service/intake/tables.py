@@ -10,6 +10,7 @@ from __future__ import annotations
 import secrets
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
+from operator import itemgetter
 from typing import Any, NamedTuple
 
 import numpy as np
@@ -19,6 +20,8 @@ from pydantic import TypeAdapter, ValidationError
 from service.intake.checks import check_consistency, check_profiles, check_records
 from service.intake.csvinput import parse_csv_body
 from service.intake.models import (
+    JSON_SAFE_INTEGER_LIMIT,
+    MAX_MAGNITUDE,
     Design,
     Profile,
     Record,
@@ -93,6 +96,74 @@ _WHOLE_LISTS: dict[type[Record] | type[Profile], TypeAdapter[list[Any]]] = {
 }
 
 
+_RECORD_ORDER = itemgetter("metric", "subject", "period", "treatment")  # of normalized records
+
+
+class RecordRow(NamedTuple):
+    """A record row that passed every check of models.Record, with the same field values (a
+    tuple: _plain_records makes a list of them in a fraction of pydantic's time)."""
+
+    subject: str
+    period: int
+    sequence: str | None
+    treatment: str
+    metric: str
+    value: float
+
+
+_RECORD_FIELDS = frozenset(Record.model_fields)
+_REQUIRED_RECORD_FIELDS = frozenset(
+    name for name, field in Record.model_fields.items() if field.is_required()
+)
+_EXACT_INT = 2**53  # ints below this in magnitude are exactly the float of the same value
+
+
+def _new_label(text: str, known: set[str]) -> bool:
+    """Whether `text` is a label _plain_records accepts (then remembered in `known`)."""
+    # models._label accepts more (non-ASCII labels); those go to pydantic, which decides
+    if text.isascii() and text.strip():
+        known.add(text)
+        return True
+    return False
+
+
+def _plain_records(items: list[Any]) -> list[RecordRow] | None:
+    """The rows of `items` if every one is a plain valid record: an exact dict of known fields,
+    ASCII labels, a period in range, a finite value of modest size (float, or an int below 2**53
+    in magnitude). None as soon as one is not; pydantic then validates the list and decides (and
+    names any problem). Whatever this accepts, models.Record accepts with the same values
+    (tests/intake/test_tables.py checks it on generated rows)."""
+    rows: list[RecordRow] = []
+    fields, required = _RECORD_FIELDS, _REQUIRED_RECORD_FIELDS
+    known: set[str] = set()  # labels seen already (a study repeats a handful of them)
+    for item in items:
+        if type(item) is not dict:
+            return None
+        keys = item.keys()
+        if not (keys == fields or keys <= fields and keys >= required):
+            return None
+        subject, period, treatment = item["subject"], item["period"], item["treatment"]
+        sequence, metric = item.get("sequence"), item.get("metric", "response")
+        value = item["value"]
+        if type(value) is int and -_EXACT_INT < value < _EXACT_INT:
+            value = float(value)
+        elif type(value) is not float or not -MAX_MAGNITUDE <= value <= MAX_MAGNITUDE:
+            return None  # NaN fails both comparisons
+        if (
+            type(period) is not int or not 1 <= period < JSON_SAFE_INTEGER_LIMIT
+            or type(subject) is not str or subject not in known and not _new_label(subject, known)
+            or type(treatment) is not str
+            or treatment not in known and not _new_label(treatment, known)
+            or type(metric) is not str or metric not in known and not _new_label(metric, known)
+            or sequence is not None and (
+                type(sequence) is not str
+                or sequence not in known and not _new_label(sequence, known))
+        ):
+            return None
+        rows.append(RecordRow(subject, period, sequence, treatment, metric, value))
+    return rows
+
+
 def _validate_list(
     raw: dict[Any, Any], key: str, model: type[Record] | type[Profile], problems: list[Problem]
 ) -> tuple[list[tuple[int, Any]], int]:
@@ -101,6 +172,8 @@ def _validate_list(
     if not isinstance(items, list):
         problems.append(Problem((key,), f"must be a list, got {describe_json_type(items)}"))
         return [], 0
+    if model is Record and (plain := _plain_records(items)) is not None:
+        return list(enumerate(plain)), len(items)
     try:
         return list(enumerate(_WHOLE_LISTS[model].validate_python(items))), len(items)
     except ValidationError:
@@ -187,7 +260,7 @@ def normalize_request_and_tables(raw: Any) -> tuple[dict[str, Any], list[MetricT
              "treatment": r.treatment, "metric": r.metric, "value": float(r.value)}
             for _, r in records
         ),
-        key=lambda r: (r["metric"], r["subject"], r["period"], r["treatment"]),
+        key=_RECORD_ORDER,
     )
     normalized_profiles = sorted(
         (
@@ -259,14 +332,36 @@ def _sequences_of(rows: Iterable[dict[str, Any]]) -> dict[str, str]:
     by_period: dict[str, dict[int, str]] = {}
     for row in rows:
         subject = row["subject"]
-        if row.get("sequence") is not None:
-            labels.setdefault(subject, row["sequence"])
-        by_period.setdefault(subject, {}).setdefault(row["period"], row["treatment"])
+        if subject not in labels and (sequence := row.get("sequence")) is not None:
+            labels[subject] = sequence
+        plan = by_period.get(subject)
+        if plan is None:
+            by_period[subject] = {row["period"]: row["treatment"]}
+        elif row["period"] not in plan:
+            plan[row["period"]] = row["treatment"]
     return {
         subject: labels[subject] if subject in labels
         else "-".join(t for _, t in sorted(plan.items()))
         for subject, plan in by_period.items()
     }
+
+
+def _observations(
+    subjects: list[str], cells_of: dict[str, dict[str, list[tuple[int, float]]]],
+    sequence_of: dict[str, str], treatments: tuple[str, ...],
+) -> list[Observation]:
+    """Each subject's observations of the design's treatments, in (period, treatment, value)
+    order, subject after subject."""
+    found: list[Observation] = []
+    make = tuple.__new__  # Observation(...) less the call of its generated __new__
+    for subject in subjects:
+        sequence = sequence_of[subject]
+        seen = sorted([(period, treatment, value)
+                       for treatment, pairs in cells_of[subject].items() if treatment in treatments
+                       for period, value in pairs])
+        found += [make(Observation, (subject, sequence, period, treatment, value))
+                  for period, treatment, value in seen]
+    return found
 
 
 def _missing_reason(missing: list[str]) -> str:
@@ -322,23 +417,25 @@ def build_tables(
     # metric -> subject -> treatment -> [(period, value)] in period order
     by_metric: dict[str, dict[str, dict[str, list[tuple[int, float]]]]] = {}
     for row in [*records, *extras]:
-        cells = by_metric.setdefault(row["metric"], {}).setdefault(row["subject"], {})
-        cells.setdefault(row["treatment"], []).append((int(row["period"]), float(row["value"])))
+        of_metric = by_metric.get(row["metric"])
+        if of_metric is None:
+            of_metric = by_metric[row["metric"]] = {}
+        cells = of_metric.get(row["subject"])
+        if cells is None:
+            cells = of_metric[row["subject"]] = {}
+        seen = cells.get(row["treatment"])
+        if seen is None:
+            cells[row["treatment"]] = [(int(row["period"]), float(row["value"]))]
+        else:
+            seen.append((int(row["period"]), float(row["value"])))
 
     problems: list[Problem] = []
     tables: list[MetricTable] = []
     for metric in sorted(by_metric):
         where: Loc = ("records",) if metric in input_metrics else ("profiles",)
         cells_of = by_metric[metric]
-        observations = tuple(
-            Observation(subject, sequence_of[subject], period, treatment, value)
-            for subject in sorted(cells_of)
-            for period, treatment, value in sorted(
-                (period, treatment, value)
-                for treatment, seen in cells_of[subject].items() if treatment in treatments
-                for period, value in seen
-            )
-        )
+        subjects = sorted(cells_of)
+        observations = tuple(_observations(subjects, cells_of, sequence_of, treatments))
         if _is_parallel(cells_of):
             problems.extend(_parallel_problems(metric, where, cells_of, design))
             tables.append(MetricTable(
@@ -350,7 +447,7 @@ def build_tables(
             continue
         analysed: list[str] = []
         excluded: list[ExcludedSubject] = []
-        for subject in sorted(cells_of):
+        for subject in subjects:
             cells = cells_of[subject]
             missing = [t for t in treatments if t not in cells]
             if not missing:
@@ -366,9 +463,10 @@ def build_tables(
             count = f"{len(analysed)} analysable subject" + ("" if len(analysed) == 1 else "s")
             problems.append(Problem(where, f"metric {metric!r}: only {count}; "
                                            f"at least 3 are needed"))
-        values = np.array([[_mean(cells_of[s][t]) for t in treatments] for s in analysed],
+        table_cells = [[cells_of[s][t] for t in treatments] for s in analysed]
+        values = np.array([[_mean(seen) for seen in row] for row in table_cells],
                           dtype=np.float64).reshape(len(analysed), len(treatments))
-        periods = np.array([[cells_of[s][t][0][0] for t in treatments] for s in analysed],
+        periods = np.array([[seen[0][0] for seen in row] for row in table_cells],
                            dtype=np.int64).reshape(len(analysed), len(treatments))
         tables.append(MetricTable(
             metric=metric, treatments=treatments, subjects=tuple(analysed), values=values,

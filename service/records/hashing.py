@@ -16,6 +16,7 @@ import rfc8785
 # ("8333333333333333000"). Plain json.loads reads those back as an int, which the rfc8785 library
 # refuses (beyond the I-JSON range, RFC 7493 section 2.2); load_canonical reads them as the double.
 _SAFE_INTEGER = 2**53
+_AS_IS_LOW = 1e-4  # non-integral floats from here up to 2**53 in magnitude go to orjson as they are
 _LARGEST_INTEGER = 2**53 - 1  # rfc8785 refuses ints outside ±(2**53 - 1); so does the fast path
 _ABOVE_BMP_LEADS = (b"\xf0", b"\xf1", b"\xf2", b"\xf3", b"\xf4")  # bytes.__contains__: memchr-fast
 
@@ -74,40 +75,36 @@ def canonical_json(obj: Any) -> bytes:
 
 
 def _prepared(obj: Any, depth: int) -> Any:
-    """`obj` with every float orjson would write differently replaced (see _number)."""
+    """`obj` with every float orjson would write differently replaced (see _number): the very
+    same object where nothing needs replacing (most of a record: no copy is made), else a copy
+    of each container on the way to a replaced value."""
     kind = type(obj)
-    if kind is dict:
+    keyed = kind is dict
+    if keyed or kind is list or kind is tuple:  # orjson writes a tuple as an array, like a list
         if depth > _FAST_DEPTH:
             raise _NotFast
-        prepared: dict[str, Any] = {}
-        for key, value in obj.items():
-            if type(key) is not str:
+        copied: Any = None
+        for key, value in obj.items() if keyed else enumerate(obj):
+            if keyed and type(key) is not str:
                 raise _NotFast
             kind = type(value)
+            if kind is str or value is None or kind is bool:
+                continue
             if kind is float:
-                prepared[key] = _number(value)
-            elif kind is str or kind is bool or value is None:
-                prepared[key] = value
+                if (_AS_IS_LOW <= value < _SAFE_INTEGER or -_SAFE_INTEGER < value <= -_AS_IS_LOW
+                        ) and not value.is_integer():
+                    continue  # what _number hands back unchanged
+                new = _number(value)
             elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
-                prepared[key] = value
+                continue
             else:
-                prepared[key] = _prepared(value, depth + 1)
-        return prepared
-    if kind is list or kind is tuple:
-        if depth > _FAST_DEPTH:
-            raise _NotFast
-        items: list[Any] = []
-        for value in obj:
-            kind = type(value)
-            if kind is float:
-                items.append(_number(value))
-            elif kind is str or kind is bool or value is None:
-                items.append(value)
-            elif kind is int and -_LARGEST_INTEGER <= value <= _LARGEST_INTEGER:
-                items.append(value)
-            else:
-                items.append(_prepared(value, depth + 1))
-        return items
+                new = _prepared(value, depth + 1)
+                if new is value:
+                    continue
+            if copied is None:
+                copied = dict(obj) if keyed else list(obj)
+            copied[key] = new
+        return obj if copied is None else copied
     if kind is str or kind is bool or obj is None:
         return obj
     if kind is float:
@@ -133,7 +130,7 @@ def _number(value: float) -> float | int | orjson.Fragment:
     if value.is_integer():
         if -_SAFE_INTEGER < value < _SAFE_INTEGER:
             return int(value)
-    elif 1e-4 <= value < _SAFE_INTEGER or -_SAFE_INTEGER < value <= -1e-4:
+    elif _AS_IS_LOW <= value < _SAFE_INTEGER or -_SAFE_INTEGER < value <= -_AS_IS_LOW:
         return value
     try:
         return orjson.Fragment(rfc8785.dumps(value))

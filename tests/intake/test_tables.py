@@ -5,6 +5,7 @@ from __future__ import annotations
 import copy
 import json
 import math
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -574,3 +575,148 @@ def test_normalize_mutated_valid_request(data: st.DataObject) -> None:
     else:
         assert all(math.isfinite(r["value"]) for r in inputs["records"])
         assert rfc8785.dumps(inputs)  # anything accepted can be hashed (RFC 8785)
+
+
+# --- the fast readers: whatever they accept, the reference readers accept alike ---
+
+def _same_json(a: Any, b: Any) -> bool:
+    """Equal values of equal types all the way down (int is not float, -0.0 is not 0.0)."""
+    if type(a) is not type(b):
+        return False
+    if isinstance(a, dict):
+        return list(a) == list(b) and all(_same_json(a[k], b[k]) for k in a)
+    if isinstance(a, list):
+        return len(a) == len(b) and all(_same_json(x, y) for x, y in zip(a, b, strict=True))
+    if isinstance(a, float):
+        return a.hex() == b.hex()
+    return bool(a == b)
+
+
+json_documents = st.recursive(
+    st.none() | st.booleans() | st.integers(-(2**70), 2**70)
+    | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=6),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=4), inner,
+                                                                max_size=4),
+    max_leaves=20,
+)
+
+
+@settings(max_examples=400, deadline=None)
+@given(json_documents, st.booleans())
+def test_json_bodies_read_as_the_standard_decoder_reads_them(value: Any, spaced: bool) -> None:
+    """parse_json_body (orjson where it is safe) gives the value of Python's json.loads, type for
+    type, on generated documents: integers far beyond 64 bits, floats of every size, nesting."""
+    body = json.dumps(value, indent=1 if spaced else None).encode()
+    assert _same_json(parse_json_body(body), json.loads(body))
+
+
+@pytest.mark.parametrize("text", [
+    "18446744073709551615", "18446744073709551616", "-9223372036854775808",
+    "-9223372036854775809", "123456789012345678901234567890", "1e400", "-1e400", "1e-400",
+    "2.4703282292062328e-324", "0.1e1", "-0", "-0.0", "1E5", '{"a": 1, "b": 2, "a": 3}',
+    '"\\ud83d\\ude00"', '"\\u00e9\\n"', '[1.7976931348623157e308, 5e-324]',
+    '{"v": 0.30000000000000004, "w": 123456789.12345679}',
+])
+def test_json_edge_literals_read_as_the_standard_decoder_reads_them(text: str) -> None:
+    """Integers at and past the 64-bit edges (orjson's own limit), overflow and underflow,
+    duplicate keys (RFC 8259 section 4 leaves them to the reader: Python keeps the last at the
+    first one's place), escapes: the value of json.loads, type for type."""
+    assert _same_json(parse_json_body(text.encode()), json.loads(text))
+
+
+def test_json_the_fast_reader_refuses_is_read_by_the_standard_decoder() -> None:
+    """orjson refuses a lone surrogate escape, which Python's json.loads reads (RFC 8259
+    section 8.2 allows it): the value is the standard decoder's, and the request checks name
+    it (models._encodable)."""
+    assert parse_json_body(b'["\\ud800"]') == ["\ud800"]
+    deep = b"[" * 100_000 + b"]" * 100_000
+    with pytest.raises(InvalidRequest) as info:
+        parse_json_body(deep)
+    assert "nested too deeply" in info.value.problems[0].msg
+
+
+row_values = st.one_of(
+    st.sampled_from(["S1", "T", " R ", "", " ", "\t", "é", "Ä1", "\u2028", "\x1c", "\ud800", "AUC"]),
+    st.text(max_size=3), st.none(), st.booleans(),
+    st.integers(-3, 3), st.integers(2**53 - 2, 2**53 + 2), st.integers(-(2**53) - 2, -(2**53) + 2),
+    st.integers(2**63, 2**80),
+    st.floats(), st.sampled_from([1e100, -1e100, 1e101, 5e-324, -0.0, 2.5]),
+    st.lists(st.integers(), max_size=1),
+)
+
+
+def _mostly(valid: st.SearchStrategy[Any]) -> st.SearchStrategy[Any]:
+    return st.one_of(valid, valid, valid, row_values)  # three times in four a valid value
+
+
+_labels = st.sampled_from(["S1", "T", "R", "AUC", "a b", "x\ty"])
+record_rows = st.tuples(
+    st.fixed_dictionaries(
+        {"subject": _mostly(_labels), "period": _mostly(st.integers(1, 2**53 - 1)),
+         "treatment": _mostly(_labels),
+         "value": _mostly(st.floats(-1e100, 1e100) | st.integers(-(2**53) + 1, 2**53 - 1))},
+        optional={"sequence": _mostly(_labels | st.none()), "metric": _mostly(_labels)},
+    ),
+    st.sampled_from([False] * 7 + [True]),
+).map(lambda row_extra: {**row_extra[0], "dose": 1} if row_extra[1] else row_extra[0])
+
+
+@settings(max_examples=800, deadline=None)
+@given(st.lists(record_rows, min_size=1, max_size=3))
+def test_rows_the_fast_reader_accepts_pydantic_accepts_with_the_same_values(
+    items: list[Any],
+) -> None:
+    """tables._plain_records only ever says yes where the pydantic models (the reference) say
+    yes, with the same value and type in every field; where it says no, pydantic decides."""
+    from pydantic import TypeAdapter, ValidationError
+
+    from service.intake.models import Record
+    from service.intake.tables import _plain_records
+
+    plain = _plain_records(items)
+    if plain is None:
+        return
+    try:
+        models = TypeAdapter(list[Record]).validate_python(items)
+    except ValidationError as exc:
+        raise AssertionError(f"the fast reader accepted what pydantic refuses: {exc}") from None
+    for row, model in zip(plain, models, strict=True):
+        for field in Record.model_fields:
+            assert _same_json(getattr(row, field), getattr(model, field)), field
+
+
+def test_the_fast_reader_takes_plain_rows_and_leaves_the_rest() -> None:
+    """It is used on an ordinary table (so the test above tests something), and passes rows it
+    is not sure of to pydantic: a non-ASCII label, an int beyond 2**53, an extra field."""
+    from service.intake.tables import _plain_records
+
+    rows = make_request()["records"]
+    assert _plain_records(rows) is not None
+    assert _plain_records([{**rows[0], "value": 3}]) is not None
+    for changed in ({"subject": "Ä1"}, {"value": 2**53}, {"dose": 1}, {"period": True},
+                    {"sequence": ""}, {"metric": None}, {"value": float("nan")}):
+        assert _plain_records([{**rows[0], **changed}]) is None, changed
+
+
+@pytest.mark.parametrize("request_file", sorted(
+    (Path(__file__).resolve().parents[2] / "sample_requests").glob("*.json")), ids=lambda p: p.stem)
+def test_the_fast_reader_gives_the_inputs_and_tables_of_the_reference_reader(
+    request_file: Path, monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """Every sample request normalizes to the same inputs and tables with the fast row reader
+    and without it (pydantic for every row, the reference)."""
+    from service.intake import tables as module
+
+    raw = json.loads(request_file.read_bytes())
+    raw.setdefault("settings", {})["seed"] = 7
+    fast_inputs, fast_tables = module.normalize_request_and_tables(copy.deepcopy(raw))
+    monkeypatch.setattr(module, "_plain_records", lambda items: None)
+    inputs, tables = module.normalize_request_and_tables(copy.deepcopy(raw))
+    assert _same_json(fast_inputs, inputs)
+    assert (fast_tables is None) == (tables is None)
+    for fast, reference in zip(fast_tables or [], tables or [], strict=True):
+        assert fast.metric == reference.metric and fast.subjects == reference.subjects
+        assert fast.observations == reference.observations
+        assert fast.sequences == reference.sequences and fast.excluded == reference.excluded
+        np.testing.assert_array_equal(fast.values, reference.values)
+        np.testing.assert_array_equal(fast.periods, reference.periods)
