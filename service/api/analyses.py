@@ -37,7 +37,9 @@ CSV_QUERY_PARAMETERS = SETTING_FIELDS  # flat query parameters of a CSV upload
 ID_PATTERN = "^[0-9a-f]{32}$"
 
 
-def archive_of(request: Request) -> Archive:
+async def archive_of(request: Request) -> Archive:
+    # async: FastAPI would run a plain def in the thread pool, a hop of the event loop to a
+    # thread and back for one attribute read
     archive: Archive = request.app.state.archive
     return archive
 
