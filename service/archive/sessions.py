@@ -13,7 +13,7 @@ import secrets
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 
-from sqlalchemy import delete, func, select, update
+from sqlalchemy import bindparam, delete, func, select, update
 
 from service.archive.store import Archive, api_keys, browser_sessions, sign_in_failures
 
@@ -62,6 +62,18 @@ def start_session(archive: Archive, *, label: str, now: datetime) -> tuple[str, 
     return session_id, BrowserSession(label, str(role), csrf_token, stamp, stamp)
 
 
+# Built once (a session is looked up on every request from a browser), so that SQLAlchemy
+# finds its compiled SQL in the cache instead of building the statement each time.
+_SESSION_BY_DIGEST = (
+    select(browser_sessions.c.label, browser_sessions.c.csrf_token,
+           browser_sessions.c.created_at, browser_sessions.c.last_seen_at,
+           api_keys.c.role, api_keys.c.revoked_at)
+    .select_from(browser_sessions.outerjoin(
+        api_keys, api_keys.c.label == browser_sessions.c.label))
+    .where(browser_sessions.c.session_sha256 == bindparam("digest"))
+)
+
+
 def find_session(
     archive: Archive, session_id: str, *, now: datetime, idle: timedelta, absolute: timedelta
 ) -> BrowserSession | None:
@@ -69,14 +81,7 @@ def find_session(
     whose key was revoked, is deleted here and counts as none."""
     digest = session_sha256(session_id)
     with archive.engine.connect() as conn:
-        row = conn.execute(
-            select(browser_sessions.c.label, browser_sessions.c.csrf_token,
-                   browser_sessions.c.created_at, browser_sessions.c.last_seen_at,
-                   api_keys.c.role, api_keys.c.revoked_at)
-            .select_from(browser_sessions.outerjoin(
-                api_keys, api_keys.c.label == browser_sessions.c.label))
-            .where(browser_sessions.c.session_sha256 == digest)
-        ).first()
+        row = conn.execute(_SESSION_BY_DIGEST, {"digest": digest}).first()
     if row is None:
         return None
     last_seen = parse_timestamp(row.last_seen_at)
