@@ -17,6 +17,7 @@ import numpy as np
 from numpy.typing import NDArray
 from pydantic import TypeAdapter, ValidationError
 
+from service.intake import plain
 from service.intake.checks import check_consistency, check_profiles, check_records
 from service.intake.csvinput import parse_csv_body
 from service.intake.models import (
@@ -213,6 +214,11 @@ def normalize_request_and_tables(raw: Any) -> tuple[dict[str, Any], list[MetricT
     settings, found = validate_part(Settings, raw.get("settings", {}), ("settings",))
     problems.extend(found)
 
+    if not problems and study is not None and design is not None and settings is not None:
+        plain = _plain_lane(raw, design, settings)
+        if plain is not None:
+            return _finished(study, design, settings, *plain)
+
     records, n_records = _validate_list(raw, "records", Record, problems)
     profiles, n_profiles = _validate_list(raw, "profiles", Profile, problems)
     if n_records == 0 and n_profiles == 0 and "records" not in {p.loc[0] for p in problems}:
@@ -289,6 +295,40 @@ def normalize_request_and_tables(raw: Any) -> tuple[dict[str, Any], list[MetricT
 
     if problems or study is None or design is None or settings is None:
         raise InvalidRequest(problems)
+    return _finished(study, design, settings, normalized_records, normalized_profiles, tables)
+
+
+def _plain_lane(
+    raw: dict[Any, Any], design: Design, settings: Settings
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]], list[MetricTable] | None] | None:
+    """The normalized records, profiles and tables of a clean records-only request, read by
+    the plain lane (service/intake/plain.py); None wherever the row-by-row reader must decide."""
+    if raw.get("profiles", []) != [] or design.test == design.reference or (
+        design.baseline is not None and design.baseline in (design.test, design.reference)
+    ):
+        return None
+    treatments = (design.test, design.reference) + (
+        (design.baseline,) if design.baseline is not None else ()
+    )
+    read = plain.read_plain_records(raw.get("records"), treatments)
+    if read is None:
+        return None
+    tables = plain.complete_crossover_tables(read, treatments, MetricTable, Observation)
+    if tables is None:
+        try:
+            tables = build_tables({"design": design.model_dump(), "records": read.records,
+                                   "profiles": [],
+                                   "settings": {"incomplete_subjects":
+                                                settings.incomplete_subjects}})
+        except InvalidRequest:
+            return None
+    return read.records, [], tables
+
+
+def _finished(
+    study: Study, design: Design, settings: Settings, normalized_records: list[dict[str, Any]],
+    normalized_profiles: list[dict[str, Any]], tables: list[MetricTable] | None,
+) -> tuple[dict[str, Any], list[MetricTable] | None]:
     settings_out = settings.model_dump()
     for added in ("scaling", "tmax_limits"):
         if settings_out[added] is None:
