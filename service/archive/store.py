@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import sqlite3
+import threading
 import uuid
 from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
@@ -185,6 +186,11 @@ class Archive:
 
     def __init__(self, engine: Engine) -> None:
         self._engine = engine
+        # SQLite: appends run on one connection of the pool kept for them (taken at the first
+        # append, given back by close), one at a time in this process; checking a connection
+        # out of the pool and back in for every append cost about as much as the INSERT.
+        self._appender: Any = None
+        self._appender_lock = threading.Lock()
 
     @classmethod
     def create(cls, url: str, *, busy_timeout_ms: int = 10_000) -> Archive:
@@ -231,6 +237,10 @@ class Archive:
         return archive
 
     def close(self) -> None:
+        with self._appender_lock:
+            if self._appender is not None:
+                self._appender.close()  # back to the pool, which dispose() then closes
+                self._appender = None
         self._engine.dispose()
 
     @property
@@ -248,16 +258,17 @@ class Archive:
     @contextmanager
     def _writing(self) -> Iterator[_Writer]:
         """An append transaction holding the append lock (as `appending`). SQLite: straight on
-        the pooled sqlite3 connection, with the statements compiled once from these tables
-        (SQLAlchemy's execution layer was three quarters of an append's CPU time); other
+        the sqlite3 connection kept for appends, with the statements compiled once from these
+        tables (SQLAlchemy's execution layer was three quarters of an append's CPU time); other
         databases: through SQLAlchemy."""
         if self._engine.dialect.name != "sqlite":
             with self._engine.connect() as conn, _append_lock(conn):
                 yield _SqlAlchemyWriter(conn)
             return
-        pooled = self._engine.raw_connection()
-        try:
-            connection = pooled.driver_connection
+        with self._appender_lock:
+            if self._appender is None:
+                self._appender = self._engine.raw_connection()
+            connection = self._appender.driver_connection
             if not isinstance(connection, sqlite3.Connection):
                 raise ArchiveError("the SQLite archive's connection is not a sqlite3 connection")
             cursor = connection.cursor()
@@ -271,8 +282,6 @@ class Archive:
                 raise
             finally:
                 cursor.close()
-        finally:
-            pooled.close()  # back to the pool
 
     def insert(
         self, record: Mapping[str, Any], submitter: str = "unauthenticated",

@@ -229,39 +229,51 @@ def _treatment_summary(table: MetricTable) -> list[dict[str, Any]]:
 
 def _summary_row(label: str, role: str, column: np.ndarray[Any, np.dtype[np.float64]]) -> dict[str, Any]:
     n = int(column.size)
+    mean = sd = low = high = None
+    if n:
+        # The ufuncs numpy's own mean and std(ddof=1) run, in the same order (numpy/_core/
+        # _methods.py: _mean, _var, _std), less their Python-level argument handling: the same
+        # floats (tests/records/test_building.py compares them bit for bit).
+        total = _ADD.reduce(column)
+        mean = float(total / n)
+        if n > 1:
+            deviations = column - total / n
+            sd = math.sqrt(float(_ADD.reduce(_MULTIPLY(deviations, deviations,
+                                                        out=deviations)) / (n - 1)))
+        low, high = float(_MINIMUM.reduce(column)), float(_MAXIMUM.reduce(column))
     return {
         "treatment": label,
         "role": role,
         "n": n,
-        "mean": float(column.mean()) if n else None,
-        "sd": float(column.std(ddof=1)) if n > 1 else None,
-        "min": float(column.min()) if n else None,
-        "max": float(column.max()) if n else None,
+        "mean": mean,
+        "sd": sd,
+        "min": low,
+        "max": high,
     }
+
+
+_ADD, _MULTIPLY, _MINIMUM, _MAXIMUM = np.add, np.multiply, np.minimum, np.maximum
 
 
 def _per_subject(table: MetricTable, ratio_json: Mapping[str, Any]) -> list[dict[str, Any]]:
     jackknife = {v["subject"]: v["theta"] for v in ratio_json["jackknife"]["values"]}
-    rows = []
+    treatments = table.treatments
     has_baseline = table.values.shape[1] == 3
     # tolist(): the same Python floats and ints as float()/int() of each element, made at once
     values, periods = table.values.tolist(), table.periods.tolist()
-    for subject, sequence, own, own_periods in zip(table.subjects, table.sequences, values,
-                                                   periods, strict=True):
-        t, r = own[0], own[1]
-        z = r - own[2] if has_baseline else r
-        rows.append(
-            {
-                "subject": subject,
-                "sequence": sequence,
-                "values": dict(zip(table.treatments, own, strict=True)),
-                "periods": dict(zip(table.treatments, own_periods, strict=True)),
-                "numerator_difference": t - r,
-                "denominator_difference": z,
-                "jackknife_theta": jackknife.get(subject),
-            }
-        )
-    return rows
+    return [
+        {
+            "subject": subject,
+            "sequence": sequence,
+            "values": dict(zip(treatments, own, strict=True)),
+            "periods": dict(zip(treatments, own_periods, strict=True)),
+            "numerator_difference": own[0] - own[1],
+            "denominator_difference": own[1] - own[2] if has_baseline else own[1],
+            "jackknife_theta": jackknife.get(subject),
+        }
+        for subject, sequence, own, own_periods in zip(table.subjects, table.sequences, values,
+                                                       periods, strict=True)
+    ]
 
 
 def _all_finite(result: Any) -> bool:

@@ -187,3 +187,30 @@ def test_tables_handed_on_by_the_checks_give_the_same_record(request_of: Any) ->
         assert handed["result"]["metrics"][0]["subjects"]["excluded"]  # the case is exercised
     assert handed == rebuilt
     assert handed_texts == rebuilt_texts
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.integers(1, 300), st.integers(1, 3), st.integers(0, 2**32 - 1),
+       st.sampled_from([1e-3, 1.0, 1e4, 1e90]))
+def test_treatment_summaries_are_numpys_mean_and_std_bit_for_bit(
+    n: int, width: int, seed: int, scale: float,
+) -> None:
+    """building._summary_row runs numpy's mean and std(ddof=1) ufunc by ufunc; the reference is
+    numpy's own ndarray.mean/std/min/max on the same strided column of a table (sizes past
+    numpy's pairwise-summation blocks of 8 and 128 included)."""
+    from service.records.building import _summary_row
+
+    values = np.random.default_rng(seed).normal(3.0, 1.0, size=(n, width)) * scale
+    for j in range(width):
+        column = values[:, j]
+        row = _summary_row("T", "test", column)
+        assert row["n"] == n
+        assert row["mean"] is not None and row["mean"].hex() == float(column.mean()).hex()
+        if n > 1:
+            assert row["sd"] is not None and row["sd"].hex() == float(column.std(ddof=1)).hex()
+        else:
+            assert row["sd"] is None
+        assert (row["min"], row["max"]) == (float(column.min()), float(column.max()))
+    empty = _summary_row("T", "test", np.empty(0))
+    assert (empty["n"], empty["mean"], empty["sd"], empty["min"], empty["max"]) == (
+        0, None, None, None, None)
