@@ -30,7 +30,7 @@ sys.path.insert(0, str(ROOT))
 
 from service.api.analyses import created_response  # noqa: E402
 from service.archive.store import Archive  # noqa: E402
-from service.intake.reading import read_request, read_request_and_tables  # noqa: E402
+from service.intake.reading import read_for_record, read_request  # noqa: E402
 from service.records import building  # noqa: E402
 from service.records.hashing import canonical_json  # noqa: E402
 from service.records.warmup import prefer_compiled_loops  # noqa: E402
@@ -130,8 +130,9 @@ def main() -> int:
                 reference_cpu.append(time.process_time() - cpu_start)
                 clock.seconds = clock.cpu_seconds = 0.0
                 start, cpu_start = time.perf_counter(), time.process_time()
-                inputs, tables = read_request_and_tables("json", body_bytes, {})
-                record, texts = building.build_record_and_texts(inputs, tables=tables)
+                inputs, tables, plain = read_for_record("json", body_bytes, {})
+                record, texts = building.build_record_and_texts(inputs, tables=tables,
+                                                                plain_records=plain)
                 # As POST /v1/analyses does it (service.api.submissions).
                 stored = archive.insert(record, texts=texts, read_back=False)
                 body = created_response(stored, replayed=False).body

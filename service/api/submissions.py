@@ -10,7 +10,7 @@ from typing import Any
 from service.api.limits import check_work, time_exceeded
 from service.api.settings import ServiceSettings
 from service.archive.store import Archive
-from service.intake.reading import BodyKind, read_request_and_tables
+from service.intake.reading import BodyKind, read_for_record
 from service.records.building import build_record_and_texts
 from service.stats.deadlines import ComputeTimeExceeded
 
@@ -45,12 +45,13 @@ def analyse_and_archive(
             return earlier, True
     # The cap covers reading and checking the table too, not only the statistics.
     deadline = time.monotonic() + settings.max_compute_seconds
-    inputs, tables = read_request_and_tables(kind, body, query, max_records=settings.max_records)
+    inputs, tables, plain_records = read_for_record(kind, body, query,
+                                                    max_records=settings.max_records)
     check_work(inputs, settings.max_work)
     try:
         record, texts = build_record_and_texts(inputs, deadline=deadline,
                                                threads=settings.bootstrap_threads or None,
-                                               tables=tables)
+                                               tables=tables, plain_records=plain_records)
     except ComputeTimeExceeded as exc:
         raise time_exceeded(exc, settings.max_compute_seconds) from None
     if idempotency_key is None or fingerprint is None:

@@ -11,7 +11,7 @@ from typing import Any, Literal
 
 from service.intake.csvinput import parse_csv_with_lines, relocate_to_lines
 from service.intake.problems import InvalidRequest, Problem, parse_json_body
-from service.intake.tables import MetricTable, normalize_request_and_tables
+from service.intake.tables import MetricTable, Normalized, normalize_for_record
 
 BodyKind = Literal["json", "csv"]
 
@@ -27,12 +27,21 @@ def read_request(
 def read_request_and_tables(
     kind: BodyKind, body: bytes, settings: Mapping[str, str], *, max_records: int | None = None
 ) -> tuple[dict[str, Any], list[MetricTable] | None]:
+    """read_for_record without the plain-records flag."""
+    inputs, tables, _ = read_for_record(kind, body, settings, max_records=max_records)
+    return inputs, tables
+
+
+def read_for_record(
+    kind: BodyKind, body: bytes, settings: Mapping[str, str], *, max_records: int | None = None
+) -> Normalized:
     """Normalized inputs of a JSON body, or of a CSV body with its settings as flat text values.
 
     Every problem is raised at once as InvalidRequest; problems found after CSV parsing name the
     CSV line (and column) they come from. `settings` must be empty for JSON bodies, which carry
     their settings inside. The tables are the ones the checks built (see
-    normalize_request_and_tables), for build_record_and_texts(inputs, tables=...).
+    normalize_request_and_tables), for build_record_and_texts(inputs, tables=...), and whether
+    the plain lane read the records (for its plain_records=...).
     """
     lines: list[int] | None = None
     if kind == "csv":
@@ -50,7 +59,7 @@ def read_request_and_tables(
     if max_records is not None:
         check_row_count(raw, max_records)
     try:
-        return normalize_request_and_tables(raw)
+        return normalize_for_record(raw)
     except InvalidRequest as exc:
         if lines is None:
             raise

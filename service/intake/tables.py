@@ -38,10 +38,12 @@ __all__ = [
     "InvalidRequest",
     "Loc",
     "MetricTable",
+    "Normalized",
     "Observation",
     "Problem",
     "build_tables",
     "format_loc",
+    "normalize_for_record",
     "normalize_request",
     "normalize_request_and_tables",
     "parse_csv_body",
@@ -192,10 +194,27 @@ def normalize_request(raw: Any) -> dict[str, Any]:
     return normalize_request_and_tables(raw)[0]
 
 
+class Normalized(NamedTuple):
+    """A request read for its record: the normalized inputs; the tables the checks built (see
+    normalize_request_and_tables); and whether the plain lane read the records (then they are
+    exact dicts of the six fields, with ASCII labels, periods below 2**53 and finite float
+    values: what records.hashing.canonical_plain_rows needs)."""
+
+    inputs: dict[str, Any]
+    tables: list[MetricTable] | None
+    plain_records: bool
+
+
 def normalize_request_and_tables(raw: Any) -> tuple[dict[str, Any], list[MetricTable] | None]:
     """normalize_request, with the metric tables its whole-table checks built: build_tables of
     the normalized inputs, handed on so that the record is not built from a second copy (None
     when the request has profiles, whose derived metrics join the tables later)."""
+    inputs, tables, _ = normalize_for_record(raw)
+    return inputs, tables
+
+
+def normalize_for_record(raw: Any) -> Normalized:
+    """normalize_request_and_tables, and whether the plain lane read the records."""
     if not isinstance(raw, dict):
         raise InvalidRequest([Problem(("body",), "the request must be a JSON object")])
     problems: list[Problem] = []
@@ -217,7 +236,7 @@ def normalize_request_and_tables(raw: Any) -> tuple[dict[str, Any], list[MetricT
     if not problems and study is not None and design is not None and settings is not None:
         plain = _plain_lane(raw, design, settings)
         if plain is not None:
-            return _finished(study, design, settings, *plain)
+            return Normalized(*_finished(study, design, settings, *plain), plain_records=True)
 
     records, n_records = _validate_list(raw, "records", Record, problems)
     profiles, n_profiles = _validate_list(raw, "profiles", Profile, problems)
@@ -295,7 +314,10 @@ def normalize_request_and_tables(raw: Any) -> tuple[dict[str, Any], list[MetricT
 
     if problems or study is None or design is None or settings is None:
         raise InvalidRequest(problems)
-    return _finished(study, design, settings, normalized_records, normalized_profiles, tables)
+    return Normalized(
+        *_finished(study, design, settings, normalized_records, normalized_profiles, tables),
+        plain_records=False,
+    )
 
 
 def _plain_lane(

@@ -14,7 +14,13 @@ import scipy
 from service import __version__
 from service.intake.tables import MetricTable, build_tables
 from service.records.bioequivalence import abe_block, design_of
-from service.records.hashing import RecordTexts, canonical_json, sha256_hex
+from service.records.hashing import (
+    CanonicalText,
+    RecordTexts,
+    canonical_json,
+    canonical_plain_rows,
+    sha256_hex,
+)
 from service.records.profiles import derive_profile_metrics
 from service.records.tmax import tmax_comparison
 from service.stats.designs import DesignRecognition
@@ -47,7 +53,7 @@ def build_record(
 
 def build_record_and_texts(
     inputs: dict[str, Any], *, deadline: float | None = None, threads: int | None = None,
-    tables: Sequence[MetricTable] | None = None,
+    tables: Sequence[MetricTable] | None = None, plain_records: bool = False,
 ) -> tuple[dict[str, Any], RecordTexts | None]:
     """build_record, with the canonical JSON of its inputs and result (made once here: the
     inputs hash and the finiteness check need them anyway) for Archive.insert; None where the
@@ -55,8 +61,14 @@ def build_record_and_texts(
 
     `tables`: build_tables(inputs) made already, as read_request_and_tables hands them on with
     the very `inputs` it returned (unchanged since); used only for a request without profiles,
-    where they are the tables the record is built from."""
-    inputs_text = canonical_json(inputs)
+    where they are the tables the record is built from. `plain_records`: the plain lane read
+    the records (intake.reading.read_for_record says so), so their canonical text is made from
+    orjson's (hashing.canonical_plain_rows), not value by value."""
+    if plain_records:
+        records = CanonicalText(canonical_plain_rows(inputs["records"], "value").decode("ascii"))
+        inputs_text = canonical_json({**inputs, "records": records})
+    else:
+        inputs_text = canonical_json(inputs)
     result, result_text = _result_and_text(inputs, deadline, threads, tables)
     record = {"inputs_sha256": sha256_hex(inputs_text), "inputs": inputs, "result": result}
     return record, None if result_text is None else RecordTexts(inputs_text, result_text)

@@ -6,6 +6,7 @@ import hashlib
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass
+from operator import itemgetter
 from typing import Any
 
 import orjson
@@ -72,6 +73,25 @@ def canonical_json(obj: Any) -> bytes:
     if not text.isascii() and any(lead in text for lead in _ABOVE_BMP_LEADS):
         return bytes(rfc8785.dumps(_expanded(obj)))
     return text
+
+
+def canonical_plain_rows(rows: list[dict[str, Any]], number: str) -> bytes:
+    """canonical_json(rows) for rows the caller vouches for (intake's plain lane reads them):
+    exact dicts with the same str keys whose values are exact str (no lone surrogates), None, or
+    ints within ±(2**53 - 1), except that under the key `number` each row holds a finite float.
+    Only that column is looked at: the rows whose float orjson would write otherwise than RFC
+    8785 (see _number) are copied with the number rewritten, and orjson writes the rest."""
+    odd = [i for i, value in enumerate(map(itemgetter(number), rows))
+           if value.is_integer() or not _AS_IS_LOW <= abs(value) < _SAFE_INTEGER]
+    if odd:
+        given, rows = rows, list(rows)
+        try:
+            for i in odd:
+                row = rows[i] = dict(rows[i])
+                row[number] = _number(row[number])
+        except _NotFast:  # not what was vouched for (NaN, an infinity): the reference decides
+            return canonical_json(given)
+    return orjson.dumps(rows, option=_SORTED)
 
 
 def _prepared(obj: Any, depth: int) -> Any:

@@ -16,12 +16,14 @@ from unittest import mock
 
 import numpy as np
 import pytest
+import rfc8785
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.intake import plain
 from service.intake import tables as module
 from service.intake.tables import InvalidRequest, MetricTable
+from service.records.hashing import canonical_plain_rows
 from tests.intake.test_tables import _same_json
 
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_requests"
@@ -59,6 +61,12 @@ def _assert_same_reading(raw: dict[str, Any]) -> tuple[str, Any]:
     else:
         assert _same_json(fast[1][0], reference[1][0])
         _same_tables(fast[1][1], reference[1][1])
+        normalized = module.normalize_for_record(copy.deepcopy(raw))
+        if normalized.plain_records:
+            # what the lane vouches for is what hashing.canonical_plain_rows needs: the rfc8785
+            # package (the reference of RFC 8785) writes the records the same
+            records = normalized.inputs["records"]
+            assert canonical_plain_rows(records, "value") == rfc8785.dumps(records)
     return fast
 
 

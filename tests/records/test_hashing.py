@@ -334,3 +334,46 @@ def test_doubles_near_every_power_of_ten_as_the_rfc8785_package(exponent: int) -
                            power * 1.5, power * 9.999999999999998) if math.isfinite(x)]
     doubles += [-x for x in doubles]
     assert canonical_json(doubles) == rfc8785.dumps(doubles)
+
+
+# Text that could fool a search for `"value":<number>` in the serialised rows: the pattern itself
+# inside a label, quotes, backslashes, and the digits of the values around it.
+_TRICKY_LABELS = ['"value":5614.0}', '"value":1.0,', 'value', '\\', '"', '\\"value\\":2.0}',
+                  ':1.0}', "S1", "é", "\u2028"]
+_plain_labels = st.one_of(st.sampled_from(_TRICKY_LABELS), st.text(max_size=4).filter(
+    lambda text: all(not 0xD800 <= ord(c) <= 0xDFFF for c in text)))
+_plain_numbers = st.one_of(
+    finite_doubles, st.sampled_from([n for n in HOSTILE_NUMBERS if type(n) is float
+                                     and math.isfinite(n)]),
+    st.integers(-(2**53) + 1, 2**53 - 1).map(float),
+)
+
+
+@settings(max_examples=500, deadline=None)
+@given(st.sampled_from(["value", "a", "zz"]),
+       st.lists(st.tuples(_plain_labels, st.integers(-(2**53) + 1, 2**53 - 1),
+                          st.none() | _plain_labels, _plain_numbers), max_size=20),
+       st.lists(_plain_numbers, min_size=1, max_size=3))
+def test_plain_rows_as_the_rfc8785_package(
+    number: str, cells: list[tuple[str, int, str | None, float]], repeated: list[float],
+) -> None:
+    """canonical_plain_rows (orjson's text with some numbers replaced) gives rfc8785's bytes for
+    rows of the kind the plain lane vouches for, with the number's key first, last or between,
+    labels holding the very pattern it replaces, and repeated hostile numbers (1e21, 5e-324,
+    -0.0, 1e-7, integral doubles past 2**53)."""
+    from service.records.hashing import canonical_plain_rows
+
+    rows = [{"subject": s, "period": p, "sequence": q, number: v} for s, p, q, v in cells]
+    rows += [{"subject": "S", "period": 1, "sequence": None, number: v} for v in repeated * 2]
+    assert canonical_plain_rows(rows, number) == rfc8785.dumps(rows)
+
+
+def test_plain_rows_that_are_not_plain_go_to_the_reference() -> None:
+    """Rows that break the promise (a NaN) get the reference's error, not orjson's null."""
+    from service.records.hashing import canonical_plain_rows
+
+    rows = [{"subject": "S1", "value": 1.0}, {"subject": "S2", "value": float("nan")}]
+    with pytest.raises(ValueError):
+        canonical_plain_rows(rows, "value")
+    many = [{"subject": f"S{i}", "value": float(i)} for i in range(40)]
+    assert canonical_plain_rows(many, "value") == rfc8785.dumps(many)
