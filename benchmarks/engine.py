@@ -32,6 +32,8 @@ from scipy import stats
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from machine import StolenTime  # noqa: E402  (benchmarks/machine.py)
+
 from service.stats.ratio import analyse_ratio, theta_of_means  # noqa: E402
 
 REPEATS = 9
@@ -149,6 +151,13 @@ def _whole_processes() -> int:
 
 
 def main() -> int:
+    with StolenTime() as stolen:
+        failures = _measure()
+    print(stolen.describe())
+    return 1 if failures else 0
+
+
+def _measure() -> int:
     failures = 0
     # Measure memory first: a child's peak RSS includes the parent's pages at fork time, and
     # scipy's runs below leave this process large.
@@ -183,7 +192,7 @@ def main() -> int:
         print(f"{n:>5} {replicates:>8} {mine:>9.4f} {single:>9.4f} {theirs:>9.4f} {ratio:>7.3f} "
               f"{'≤ ' + str(target):>7}  {verdict}")
     failures += _whole_processes()
-    return 1 if failures else 0
+    return failures
 
 
 if __name__ == "__main__":
