@@ -111,7 +111,7 @@ def read_plain_records(items: Any, treatments: tuple[str, ...]) -> PlainRecords 
     ):
         return None
 
-    # Unique (metric, subject, period): the sort never compares further than the treatment.
+    # Unique (metric, subject, period): the sort never compares past the period.
     ordered = sorted(zip(metrics, subjects, periods, treatment_column, sequences, values,
                          strict=True))
     records = [

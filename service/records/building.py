@@ -65,7 +65,7 @@ def build_record_and_texts(
     the records (intake.reading.read_for_record says so), so their canonical text is made from
     orjson's (hashing.canonical_plain_rows), not value by value."""
     if plain_records:
-        records = CanonicalText(canonical_plain_rows(inputs["records"], "value").decode("ascii"))
+        records = CanonicalText(canonical_plain_rows(inputs["records"], "value").decode("utf-8"))
         inputs_text = canonical_json({**inputs, "records": records})
     else:
         inputs_text = canonical_json(inputs)
@@ -245,13 +245,12 @@ def _summary_row(label: str, role: str, column: np.ndarray[Any, np.dtype[np.floa
     if n:
         # The ufuncs numpy's own mean and std(ddof=1) run, in the same order (numpy/_core/
         # _methods.py: _mean, _var, _std), less their Python-level argument handling: the same
-        # floats (tests/records/test_building.py compares them bit for bit).
+        # floats (tests/records/test_pipeline.py compares them bit for bit).
         total = _ADD.reduce(column)
         mean = float(total / n)
         if n > 1:
             deviations = column - total / n
-            sd = math.sqrt(float(_ADD.reduce(_MULTIPLY(deviations, deviations,
-                                                        out=deviations)) / (n - 1)))
+            sd = math.sqrt(float(_ADD.reduce(_SQUARE(deviations, out=deviations)) / (n - 1)))
         low, high = float(_MINIMUM.reduce(column)), float(_MAXIMUM.reduce(column))
     return {
         "treatment": label,
@@ -264,7 +263,7 @@ def _summary_row(label: str, role: str, column: np.ndarray[Any, np.dtype[np.floa
     }
 
 
-_ADD, _MULTIPLY, _MINIMUM, _MAXIMUM = np.add, np.multiply, np.minimum, np.maximum
+_ADD, _SQUARE, _MINIMUM, _MAXIMUM = np.add, np.square, np.minimum, np.maximum
 
 
 def _per_subject(table: MetricTable, ratio_json: Mapping[str, Any]) -> list[dict[str, Any]]:

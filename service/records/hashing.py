@@ -83,15 +83,19 @@ def canonical_plain_rows(rows: list[dict[str, Any]], number: str) -> bytes:
     8785 (see _number) are copied with the number rewritten, and orjson writes the rest."""
     odd = [i for i, value in enumerate(map(itemgetter(number), rows))
            if value.is_integer() or not _AS_IS_LOW <= abs(value) < _SAFE_INTEGER]
+    given = rows
     if odd:
-        given, rows = rows, list(rows)
+        rows = list(rows)
         try:
             for i in odd:
                 row = rows[i] = dict(rows[i])
                 row[number] = _number(row[number])
         except _NotFast:  # not what was vouched for (NaN, an infinity): the reference decides
             return canonical_json(given)
-    return orjson.dumps(rows, option=_SORTED)
+    try:
+        return orjson.dumps(rows, option=_SORTED)
+    except TypeError:  # orjson.JSONEncodeError (a lone surrogate, say): as above
+        return canonical_json(given)
 
 
 def _prepared(obj: Any, depth: int) -> Any:

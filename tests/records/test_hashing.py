@@ -369,11 +369,14 @@ def test_plain_rows_as_the_rfc8785_package(
 
 
 def test_plain_rows_that_are_not_plain_go_to_the_reference() -> None:
-    """Rows that break the promise (a NaN) get the reference's error, not orjson's null."""
+    """Rows that break the promise (a NaN, a lone surrogate) get the reference's error (not
+    orjson's null or its own error); many numbers to rewrite give the same bytes."""
     from service.records.hashing import canonical_plain_rows
 
     rows = [{"subject": "S1", "value": 1.0}, {"subject": "S2", "value": float("nan")}]
     with pytest.raises(ValueError):
         canonical_plain_rows(rows, "value")
+    with pytest.raises(ValueError):  # a lone surrogate: rfc8785 refuses it, so does this
+        canonical_plain_rows([{"subject": "\ud800", "value": 1.5}], "value")
     many = [{"subject": f"S{i}", "value": float(i)} for i in range(40)]
     assert canonical_plain_rows(many, "value") == rfc8785.dumps(many)
