@@ -68,20 +68,16 @@ def check_consistency(records: Items, profiles: Items) -> list[Problem]:
     rows += [("profiles", i, p, "") for i, p in profiles]
     for key, index, row, source in rows:
         # Within one metric of the records, a clash is a duplicate and is reported as one.
-        slot = (row.subject, row.period)
-        first_t = treatment_of.get(slot)
-        if first_t is None:
-            treatment_of[slot] = (row.treatment, source, key, index)
-        elif first_t[0] != row.treatment and not (key == "records" and first_t[1] == source):
+        first_t = treatment_of.setdefault((row.subject, row.period),
+                                          (row.treatment, source, key, index))
+        if first_t[0] != row.treatment and not (key == "records" and first_t[1] == source):
             problems.append(Problem((key, index, "treatment"),
                                     f"subject {row.subject!r} received {first_t[0]!r} in period "
                                     f"{row.period} according to {_where(first_t[2], first_t[3])}, "
                                     f"but {row.treatment!r} here"))
         if row.sequence is not None:
-            first_l = label_of.get(row.subject)
-            if first_l is None:
-                label_of[row.subject] = (row.sequence, key, index)
-            elif first_l[0] != row.sequence:
+            first_l = label_of.setdefault(row.subject, (row.sequence, key, index))
+            if first_l[0] != row.sequence:
                 problems.append(Problem((key, index, "sequence"),
                                         f"subject {row.subject!r} has sequence label "
                                         f"{first_l[0]!r} in {_where(first_l[1], first_l[2])} but "
@@ -95,12 +91,8 @@ def _check_shared_labels(
     label_of: dict[str, tuple[str, str, int]],
 ) -> list[Problem]:
     plan: dict[str, dict[int, str]] = {}
-    for (subject, period), first in treatment_of.items():
-        periods = plan.get(subject)
-        if periods is None:
-            plan[subject] = {period: first[0]}
-        else:
-            periods[period] = first[0]
+    for (subject, period), (treatment, *_) in treatment_of.items():
+        plan.setdefault(subject, {})[period] = treatment
 
     def order(subject: str) -> str:
         return "-".join(t for _, t in sorted(plan[subject].items()))

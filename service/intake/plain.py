@@ -1,17 +1,18 @@
 """The plain lane: a clean, records-only request read column by column, in a fraction of the time.
 
-normalize_request_and_tables (tables.py) reads a request row by row: pydantic (or the row reader
-_plain_records) for each row, then the row-to-row checks (checks.py), then the tables
-(build_tables). For the usual request, a table of plain rows with nothing wrong in it, that is
-mostly Python-level work per row. This lane does the same checks on whole columns at once (sets,
-min and max, and zip in C) and builds the tables of a complete crossover directly.
+normalize_request_and_tables (tables.py) reads a request row by row: pydantic for each row, then
+the row-to-row checks (checks.py), then the tables (build_tables). For the usual request, a table
+of plain rows with nothing wrong in it, that is mostly Python-level work per row. This lane does
+the same checks on whole columns at once (sets, min and max, and zip in C) and builds the tables
+of a complete crossover directly.
 
 It only ever says yes: the normalized records and tables it returns are the ones the row-by-row
-reader returns for the same request (tests/intake/test_plain.py checks it on generated requests).
-As soon as anything is not plain — a row that is not an exact dict of the same fields, a label
-that is not ASCII, a value that is an int of 2**53 or more, a duplicate, a clash, a missing
-treatment, a replicate or parallel design — it answers None, and the row-by-row reader decides and
-names every problem as it always has.
+reader returns for the same request (tests/intake/test_plain.py checks it on generated requests,
+tests/intake/test_tables.py that it accepts no row pydantic refuses). As soon as anything is not
+plain — a row that is not an exact dict of the same fields, a label that is not ASCII, a value
+that is an int of 2**53 or more, a duplicate, a clash — it answers None, and the row-by-row
+reader decides and names every problem as it always has. Tables that are not a complete
+crossover (a replicate, an incomplete subject, parallel groups) are left to build_tables.
 """
 
 from __future__ import annotations

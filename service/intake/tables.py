@@ -21,8 +21,6 @@ from service.intake import plain
 from service.intake.checks import check_consistency, check_profiles, check_records
 from service.intake.csvinput import parse_csv_body
 from service.intake.models import (
-    JSON_SAFE_INTEGER_LIMIT,
-    MAX_MAGNITUDE,
     Design,
     Profile,
     Record,
@@ -102,71 +100,6 @@ _WHOLE_LISTS: dict[type[Record] | type[Profile], TypeAdapter[list[Any]]] = {
 _RECORD_ORDER = itemgetter("metric", "subject", "period", "treatment")  # of normalized records
 
 
-class RecordRow(NamedTuple):
-    """A record row that passed every check of models.Record, with the same field values (a
-    tuple: _plain_records makes a list of them in a fraction of pydantic's time)."""
-
-    subject: str
-    period: int
-    sequence: str | None
-    treatment: str
-    metric: str
-    value: float
-
-
-_RECORD_FIELDS = frozenset(Record.model_fields)
-_REQUIRED_RECORD_FIELDS = frozenset(
-    name for name, field in Record.model_fields.items() if field.is_required()
-)
-_EXACT_INT = 2**53  # ints below this in magnitude are exactly the float of the same value
-
-
-def _new_label(text: str, known: set[str]) -> bool:
-    """Whether `text` is a label _plain_records accepts (then remembered in `known`)."""
-    # models._label accepts more (non-ASCII labels); those go to pydantic, which decides
-    if text.isascii() and text.strip():
-        known.add(text)
-        return True
-    return False
-
-
-def _plain_records(items: list[Any]) -> list[RecordRow] | None:
-    """The rows of `items` if every one is a plain valid record: an exact dict of known fields,
-    ASCII labels, a period in range, a finite value of modest size (float, or an int below 2**53
-    in magnitude). None as soon as one is not; pydantic then validates the list and decides (and
-    names any problem). Whatever this accepts, models.Record accepts with the same values
-    (tests/intake/test_tables.py checks it on generated rows)."""
-    rows: list[RecordRow] = []
-    fields, required = _RECORD_FIELDS, _REQUIRED_RECORD_FIELDS
-    known: set[str] = set()  # labels seen already (a study repeats a handful of them)
-    for item in items:
-        if type(item) is not dict:
-            return None
-        keys = item.keys()
-        if not (keys == fields or keys <= fields and keys >= required):
-            return None
-        subject, period, treatment = item["subject"], item["period"], item["treatment"]
-        sequence, metric = item.get("sequence"), item.get("metric", "response")
-        value = item["value"]
-        if type(value) is int and -_EXACT_INT < value < _EXACT_INT:
-            value = float(value)
-        elif type(value) is not float or not -MAX_MAGNITUDE <= value <= MAX_MAGNITUDE:
-            return None  # NaN fails both comparisons
-        if (
-            type(period) is not int or not 1 <= period < JSON_SAFE_INTEGER_LIMIT
-            or type(subject) is not str or subject not in known and not _new_label(subject, known)
-            or type(treatment) is not str
-            or treatment not in known and not _new_label(treatment, known)
-            or type(metric) is not str or metric not in known and not _new_label(metric, known)
-            or sequence is not None and (
-                type(sequence) is not str
-                or sequence not in known and not _new_label(sequence, known))
-        ):
-            return None
-        rows.append(RecordRow(subject, period, sequence, treatment, metric, value))
-    return rows
-
-
 def _validate_list(
     raw: dict[Any, Any], key: str, model: type[Record] | type[Profile], problems: list[Problem]
 ) -> tuple[list[tuple[int, Any]], int]:
@@ -175,8 +108,6 @@ def _validate_list(
     if not isinstance(items, list):
         problems.append(Problem((key,), f"must be a list, got {describe_json_type(items)}"))
         return [], 0
-    if model is Record and (plain := _plain_records(items)) is not None:
-        return list(enumerate(plain)), len(items)
     try:
         return list(enumerate(_WHOLE_LISTS[model].validate_python(items))), len(items)
     except ValidationError:

@@ -5,7 +5,6 @@ from __future__ import annotations
 import copy
 import json
 import math
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -649,7 +648,8 @@ def _mostly(valid: st.SearchStrategy[Any]) -> st.SearchStrategy[Any]:
     return st.one_of(valid, valid, valid, row_values)  # three times in four a valid value
 
 
-_labels = st.sampled_from(["S1", "T", "R", "AUC", "a b", "x\ty"])
+_ARMS = ("S1", "T", "R", "AUC", "a b", "x\ty")  # every valid label of the rows below
+_labels = st.sampled_from(_ARMS)
 record_rows = st.tuples(
     st.fixed_dictionaries(
         {"subject": _mostly(_labels), "period": _mostly(st.integers(1, 2**53 - 1)),
@@ -661,62 +661,56 @@ record_rows = st.tuples(
 ).map(lambda row_extra: {**row_extra[0], "dose": 1} if row_extra[1] else row_extra[0])
 
 
+
+
+@st.composite
+def _mostly_plain_lists(draw: st.DrawFn) -> list[dict[str, Any]]:
+    """Lists of rows of one shape that the plain lane could take, half of them with one field
+    made hostile (a value of row_values) or one field added."""
+    optional = draw(st.sets(st.sampled_from(["sequence", "metric"])))
+    rows: list[dict[str, Any]] = []
+    for i in range(draw(st.integers(1, 4))):
+        row: dict[str, Any] = {
+            "subject": f"S{i}", "period": draw(st.integers(1, 2**53 - 1)),
+            "treatment": draw(st.sampled_from(_ARMS)),
+            "value": draw(st.floats(-1e100, 1e100) | st.integers(-(2**53) + 1, 2**53 - 1)),
+        }
+        if "sequence" in optional:
+            row["sequence"] = f"Q{i}"
+        if "metric" in optional:
+            row["metric"] = "AUC"
+        rows.append(row)
+    if draw(st.booleans()):
+        row = draw(st.sampled_from(rows))
+        field = draw(st.sampled_from([*row, "dose"]))
+        row[field] = draw(row_values)
+    return rows
+
+
 @settings(max_examples=800, deadline=None)
-@given(st.lists(record_rows, min_size=1, max_size=3))
-def test_rows_the_fast_reader_accepts_pydantic_accepts_with_the_same_values(
+@given(st.lists(record_rows, min_size=1, max_size=4) | _mostly_plain_lists())
+def test_rows_the_plain_lane_accepts_pydantic_accepts_with_the_same_values(
     items: list[Any],
 ) -> None:
-    """tables._plain_records only ever says yes where the pydantic models (the reference) say
-    yes, with the same value and type in every field; where it says no, pydantic decides."""
+    """intake.plain.read_plain_records only ever says yes where the pydantic models (the
+    reference) say yes, with the same value and type in every field, for rows drawn from valid
+    and hostile values (booleans, surrogates, blank and non-ASCII labels, ints past 2**53, NaN,
+    1e101, extra fields); where it says no, pydantic decides."""
     from pydantic import TypeAdapter, ValidationError
 
     from service.intake.models import Record
-    from service.intake.tables import _plain_records
+    from service.intake.plain import read_plain_records
 
-    plain = _plain_records(items)
-    if plain is None:
+    read = read_plain_records(items, _ARMS)
+    if read is None:
         return
     try:
         models = TypeAdapter(list[Record]).validate_python(items)
     except ValidationError as exc:
-        raise AssertionError(f"the fast reader accepted what pydantic refuses: {exc}") from None
-    for row, model in zip(plain, models, strict=True):
-        for field in Record.model_fields:
-            assert _same_json(getattr(row, field), getattr(model, field)), field
-
-
-def test_the_fast_reader_takes_plain_rows_and_leaves_the_rest() -> None:
-    """It is used on an ordinary table (so the test above tests something), and passes rows it
-    is not sure of to pydantic: a non-ASCII label, an int beyond 2**53, an extra field."""
-    from service.intake.tables import _plain_records
-
-    rows = make_request()["records"]
-    assert _plain_records(rows) is not None
-    assert _plain_records([{**rows[0], "value": 3}]) is not None
-    for changed in ({"subject": "Ä1"}, {"value": 2**53}, {"dose": 1}, {"period": True},
-                    {"sequence": ""}, {"metric": None}, {"value": float("nan")}):
-        assert _plain_records([{**rows[0], **changed}]) is None, changed
-
-
-@pytest.mark.parametrize("request_file", sorted(
-    (Path(__file__).resolve().parents[2] / "sample_requests").glob("*.json")), ids=lambda p: p.stem)
-def test_the_fast_reader_gives_the_inputs_and_tables_of_the_reference_reader(
-    request_file: Path, monkeypatch: pytest.MonkeyPatch,
-) -> None:
-    """Every sample request normalizes to the same inputs and tables with the fast row reader
-    and without it (pydantic for every row, the reference)."""
-    from service.intake import tables as module
-
-    raw = json.loads(request_file.read_bytes())
-    raw.setdefault("settings", {})["seed"] = 7
-    fast_inputs, fast_tables = module.normalize_request_and_tables(copy.deepcopy(raw))
-    monkeypatch.setattr(module, "_plain_records", lambda items: None)
-    inputs, tables = module.normalize_request_and_tables(copy.deepcopy(raw))
-    assert _same_json(fast_inputs, inputs)
-    assert (fast_tables is None) == (tables is None)
-    for fast, reference in zip(fast_tables or [], tables or [], strict=True):
-        assert fast.metric == reference.metric and fast.subjects == reference.subjects
-        assert fast.observations == reference.observations
-        assert fast.sequences == reference.sequences and fast.excluded == reference.excluded
-        np.testing.assert_array_equal(fast.values, reference.values)
-        np.testing.assert_array_equal(fast.periods, reference.periods)
+        raise AssertionError(f"the plain lane accepted what pydantic refuses: {exc}") from None
+    reference = sorted(
+        ({"subject": m.subject, "period": m.period, "sequence": m.sequence,
+          "treatment": m.treatment, "metric": m.metric, "value": m.value} for m in models),
+        key=lambda r: (r["metric"], r["subject"], r["period"]),
+    )
+    assert _same_json(read.records, reference)
