@@ -17,13 +17,9 @@ import numpy as np
 
 
 @numba.njit(inline="always")
-def _next_lane(
-    s0: Any, s1: Any, s2: Any, s3: Any, spare: Any, have: bool
-) -> tuple[Any, Any, Any, Any, Any, bool, Any]:  # pragma: no cover - compiled
+def _xoshiro(s0: Any, s1: Any, s2: Any, s3: Any) -> tuple[Any, Any, Any, Any, Any]:  # pragma: no cover
     # xoshiro256** (Blackman & Vigna 2021, ACM TOMS 47:36, "Scrambled linear pseudorandom number
-    # generators"); each 64-bit output is used as two 32-bit lanes, low lane first.
-    if have:
-        return s0, s1, s2, s3, spare, False, spare
+    # generators"): the next 64-bit output and the state after it.
     x = s1 * np.uint64(5)
     result = ((x << np.uint64(7)) | (x >> np.uint64(57))) * np.uint64(9)
     t = s1 << np.uint64(17)
@@ -33,6 +29,17 @@ def _next_lane(
     s0 ^= s3
     s2 ^= t
     s3 = (s3 << np.uint64(45)) | (s3 >> np.uint64(19))
+    return s0, s1, s2, s3, result
+
+
+@numba.njit(inline="always")
+def _next_lane(
+    s0: Any, s1: Any, s2: Any, s3: Any, spare: Any, have: bool
+) -> tuple[Any, Any, Any, Any, Any, bool, Any]:  # pragma: no cover - compiled
+    # Each 64-bit output is used as two 32-bit lanes, low lane first.
+    if have:
+        return s0, s1, s2, s3, spare, False, spare
+    s0, s1, s2, s3, result = _xoshiro(s0, s1, s2, s3)
     return s0, s1, s2, s3, result >> np.uint64(32), True, result & np.uint64(0xFFFFFFFF)
 
 
@@ -106,19 +113,12 @@ def draw_subjects(
             while t + 1 < stop:
                 paired = False
                 if not have:  # both draws from the low and high lane of one output, if neither
-                    x = s1 * np.uint64(5)  # is rejected (_next_lane, written out once)
-                    result = ((x << np.uint64(7)) | (x >> np.uint64(57))) * np.uint64(9)
+                    n0, n1, n2, n3, result = _xoshiro(s0, s1, s2, s3)  # is rejected
                     mu = (result & np.uint64(0xFFFFFFFF)) * size
                     mv = (result >> np.uint64(32)) * size
                     if ((mu & np.uint64(0xFFFFFFFF)) >= threshold
                             and (mv & np.uint64(0xFFFFFFFF)) >= threshold):
-                        shifted = s1 << np.uint64(17)
-                        s2 ^= s0
-                        s3 ^= s1
-                        s1 ^= s2
-                        s0 ^= s3
-                        s2 ^= shifted
-                        s3 = (s3 << np.uint64(45)) | (s3 >> np.uint64(19))
+                        s0, s1, s2, s3 = n0, n1, n2, n3
                         spare = result >> np.uint64(32)  # left in the state as _draw_one does
                         u = mu >> np.uint64(32)
                         v = mv >> np.uint64(32)
