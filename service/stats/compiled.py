@@ -84,7 +84,7 @@ def draw_subjects(
     # spare lane pending takes both lanes of one output at once unless one is rejected (then, as
     # after an odd stratum, the lanes go one at a time through _draw_one: the same lanes in the
     # same order either way). The pair is most of the loop's cost: these two cut it by about a
-    # quarter (benchmarks/engine.py).
+    # quarter per draw in side-by-side runs of the old and new loop.
     c = out.shape[0]
     k, n = columns.shape
     bitset = n <= 64
