@@ -11,8 +11,8 @@ from pathlib import Path
 from typing import Any
 
 from service.intake.problems import InvalidRequest, format_loc
-from service.intake.reading import BodyKind, read_request_and_tables
-from service.records.building import build_record
+from service.intake.reading import BodyKind, read_for_record
+from service.records.building import build_record_and_texts
 from service.report.rendering import render_report
 
 EXIT_INVALID = 2
@@ -31,8 +31,11 @@ def run_analyze(request: str, out: str | Path, settings: Mapping[str, str], form
               "inside", file=sys.stderr)
         return EXIT_INVALID
     try:
-        inputs, tables = read_request_and_tables(kind, body, settings)
-        record = build_record(inputs, tables=tables)
+        normalized = read_for_record(kind, body, settings)
+        # As POST /v1/analyses builds it: the plain lane's records are written to canonical
+        # JSON (for the inputs hash) from orjson's text, not value by value; the same bytes.
+        record, _ = build_record_and_texts(normalized.inputs, tables=normalized.tables,
+                                           plain_records=normalized.plain_records)
     except InvalidRequest as exc:
         what = "table" if kind == "csv" else "request"
         print(f"error: the {what} is invalid ({len(exc.problems)} problem(s)):", file=sys.stderr)

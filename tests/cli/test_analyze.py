@@ -68,6 +68,28 @@ def test_analyze_writes_a_record_whose_hash_any_client_can_recompute(tmp_path: P
     assert (out / "report.html").read_bytes().startswith(b"<!DOCTYPE html>")
 
 
+def test_inputs_hash_of_values_whose_canonical_form_differs_from_their_json(tmp_path: Path) -> None:
+    """The same recomputation (the rfc8785 package, hashlib) where the values are ints, integral
+    floats and numbers below 1e-4, which RFC 8785 section 3.2.2.3 writes otherwise than Python's
+    json (``7`` for 7.0, ``0.00003`` for 3e-05): the command reads a clean table through the
+    plain lane and writes the records' canonical text from orjson's, rows rewritten where needed."""
+    body = _request()
+    rows = body["records"]  # type: ignore[index]
+    rows[0]["value"] = 61  # type: ignore[index]
+    rows[1]["value"] = 62.0  # type: ignore[index]
+    rows[2]["value"] = 3e-05  # type: ignore[index]
+    rows[3]["value"] = 1e16  # type: ignore[index]
+    request = tmp_path / "request.json"
+    request.write_text(json.dumps(body), encoding="utf-8")
+    out = tmp_path / "out"
+    done = _run("analyze", str(request), "--out", str(out))
+    assert done.returncode == 0, done.stderr
+    record = json.loads((out / "record.json").read_text(encoding="utf-8"))
+    values = [r["value"] for r in record["inputs"]["records"]]
+    assert {61.0, 62.0, 3e-05, 1e16} <= set(values)
+    assert record["inputs_sha256"] == hashlib.sha256(rfc8785.dumps(record["inputs"])).hexdigest()
+
+
 def test_analyze_is_reproducible_to_the_last_byte(tmp_path: Path) -> None:
     """Reproducibility (DESIGN.md: the seed is part of the inputs): two runs give identical files."""
     request = tmp_path / "request.json"
