@@ -1,4 +1,4 @@
-"""The statistics engine: pure numpy, scipy.special and numba; arrays in, frozen dataclasses out."""
+"""The statistics engine: pure numpy/scipy/numba; arrays in, frozen dataclasses out."""
 
 from service.stats.imports import defer_numpy_f2py
 
