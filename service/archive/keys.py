@@ -120,13 +120,12 @@ _ACTIVE_KEYS = select(func.count()).select_from(api_keys).where(api_keys.c.revok
 def active_key_count(archive: Archive) -> int:
     """Read from the archive on every call, so that a key made by any process applies to the
     very next request."""
-    with archive.engine.connect() as conn:
-        count = conn.execute(_ACTIVE_KEYS).scalar_one()
-    return int(count)
+    row = archive.first_row(_ACTIVE_KEYS)
+    return 0 if row is None else int(next(iter(row.values())))
 
 
-# Built once, so that SQLAlchemy finds its compiled SQL in the cache instead of building the
-# statement and its cache key on every authenticated request (most of the lookup's time).
+# Built once, so that Archive.first_row compiles it once (and SQLAlchemy, on PostgreSQL, finds its
+# compiled SQL in the cache instead of building the statement and its cache key on every request).
 _KEY_BY_DIGEST = select(
     api_keys.c.label, api_keys.c.role, api_keys.c.created_at, api_keys.c.revoked_at,
     api_keys.c.key_sha256, api_keys.c.printed_name,
@@ -137,11 +136,11 @@ def find_key(archive: Archive, key: str) -> ApiKey | None:
     """The active key whose hash matches `key`, read from the archive now (so a revocation
     made by any process applies to the very next request)."""
     digest = key_sha256(key)
-    with archive.engine.connect() as conn:
-        row = conn.execute(_KEY_BY_DIGEST, {"digest": digest}).first()
-    if row is None or row.revoked_at is not None:
+    row = archive.first_row(_KEY_BY_DIGEST, {"digest": digest})
+    if row is None or row["revoked_at"] is not None:
         return None
     # The indexed lookup found it; a constant-time comparison keeps timing from saying more.
-    if not hmac.compare_digest(row.key_sha256, digest):
+    if not hmac.compare_digest(row["key_sha256"], digest):
         return None
-    return ApiKey(row.label, row.role, row.created_at, row.revoked_at, row.printed_name)
+    return ApiKey(row["label"], row["role"], row["created_at"], row["revoked_at"],
+                  row["printed_name"])
