@@ -180,6 +180,14 @@ def omission_sums_bits(
     # Subject i's sums take the replicates in order, whichever subjects a call covers. They run
     # in a private copy (no cache line shared with another thread's subjects while adding),
     # in loops that count from 0, which numba compiles without negative-index checks.
+    #
+    # Every subject's sums get an addition in every finite replicate: the term where the subject
+    # is absent, else -0.0, which leaves any double as it is (x + -0.0 == x, bit for bit, for
+    # every x, ±0.0, infinities and NaN included: IEEE 754-2019 §6.3), so the sums are those of
+    # adding only where absent. Without the branch (absent in about 37 % of the pairs, at random)
+    # LLVM runs the subjects four to a vector instruction; each subject's additions keep their
+    # order. Side by side with the branching loop, same bytes: n = 200, B = 10⁵ 8.5 against
+    # 76 ms; n = 24, B = 10⁴ 0.13 against 0.94 ms.
     if stop <= first:
         return
     one = np.uint64(1)
@@ -190,12 +198,12 @@ def omission_sums_bits(
             continue
         d = centred[b]
         dd = d * d
-        bits = present[b, 0] >> np.uint64(first)
+        bits = ~(present[b, 0] >> np.uint64(first))
         for i in range(stop - first):
-            if not (bits >> np.uint64(i)) & one:
-                count[i] += 1.0
-                sum1[i] += d
-                sum2[i] += dd
+            absent = (bits >> np.uint64(i)) & one
+            count[i] += 1.0 if absent else -0.0
+            sum1[i] += d if absent else -0.0
+            sum2[i] += dd if absent else -0.0
     omitted[:, first:stop] = sums
 
 
@@ -211,9 +219,9 @@ def omission_sums_bytes(
         d = centred[b]
         dd = d * d
         row = present[b, first:stop]
-        for i in range(stop - first):
-            if row[i] == 0:
-                count[i] += 1.0
-                sum1[i] += d
-                sum2[i] += dd
+        for i in range(stop - first):  # without a branch, as omission_sums_bits says
+            absent = row[i] == 0
+            count[i] += 1.0 if absent else -0.0
+            sum1[i] += d if absent else -0.0
+            sum2[i] += dd if absent else -0.0
     omitted[:, first:stop] = sums

@@ -106,6 +106,49 @@ def test_omission_sums_are_identical(n: int) -> None:
     np.testing.assert_array_equal(results[0], results[1])
 
 
+
+def _sums_where_absent(present: np.ndarray, n: int, finite: np.ndarray, centred: np.ndarray,
+                       sums: np.ndarray) -> None:
+    """The definition, one addition at a time and only where subject i is absent."""
+    for b in range(present.shape[0]):
+        if not finite[b]:
+            continue
+        for i in range(n):
+            here = (present[b, i] != 0 if present.dtype == np.uint8
+                    else (int(present[b, 0]) >> i) & 1)
+            if not here:
+                d = float(centred[b])
+                sums[0, i] += 1.0
+                sums[1, i] += d
+                sums[2, i] += d * d
+
+
+@pytest.mark.parametrize("n", [7, 64, 90])
+def test_omission_sums_at_the_edges_of_floating_point(n: int) -> None:
+    """The compiled loops add -0.0 where a subject is present instead of branching; IEEE 754-2019
+    §6.3 makes x + (-0.0) == x for every x, so their sums equal, bit for bit, those of adding
+    only where absent, also from starting sums of -0.0, ±infinity and NaN and with θ*−θ̂ so
+    large that its square overflows (1e200) or that it is infinite."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        data = np.random.default_rng(n).normal(size=(n, 3))
+        _, present, _ = kernels.SubjectDraws(n, data, compiled=False).draw(40)
+        if present.dtype == np.uint8:  # subject 0 in every replicate: nothing is added to it
+            present[:, 0] = 1
+        else:
+            present[:, 0] |= np.uint64(1)
+        centred = np.random.default_rng(n + 1).normal(size=40)
+        centred[[3, 9, 17, 25]] = [1e200, -0.0, np.inf, -1e300]
+        finite = np.arange(40) % 7 != 0
+        start = np.random.default_rng(3).normal(size=(3, n))
+        start[:, 0], start[:, 1], start[:, 2], start[:, 3] = -0.0, np.inf, -np.inf, np.nan
+        start[:, 4] = 0.0
+        expected, sums = start.copy(), start.copy()
+        _sums_where_absent(present, n, finite, centred, expected)
+        add = compiled.omission_sums_bytes if present.dtype == np.uint8 else compiled.omission_sums_bits
+        add(present, 0, n, finite, centred, sums)
+    assert expected.tobytes() == sums.tobytes()  # bytes: -0.0 and NaN compared as they are
+    assert np.signbit(sums[:, 0]).all()  # subject 0's -0.0 starts stayed -0.0
+
 def test_the_default_choice_of_loops(monkeypatch: pytest.MonkeyPatch) -> None:
     """Plain numpy until the process has drawn COMPILED_FROM_DRAWS in it, compiled loops from
     then on and once this process has loaded them (this test module has)."""
