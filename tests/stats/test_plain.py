@@ -125,10 +125,11 @@ def _sums_where_absent(present: np.ndarray, n: int, finite: np.ndarray, centred:
 
 @pytest.mark.parametrize("n", [7, 64, 90])
 def test_omission_sums_at_the_edges_of_floating_point(n: int) -> None:
-    """The compiled loops add -0.0 where a subject is present instead of branching; IEEE 754-2019
-    §6.3 makes x + (-0.0) == x for every x, so their sums equal, bit for bit, those of adding
-    only where absent, also from starting sums of -0.0, ±infinity and NaN and with θ*−θ̂ so
-    large that its square overflows (1e200) or that it is infinite."""
+    """The compiled loops add -0.0 where a subject is present instead of branching. x + (-0.0)
+    is x: exact for x other than zero, and for the zeros by IEEE 754-2019 §6.3 in the default
+    rounding (+0 + -0 = +0, -0 + -0 = -0; quoted from memory). So their sums equal, bit for bit,
+    those of adding only where absent, also from starting sums of -0.0, ±infinity and NaN and
+    with θ*−θ̂ so large that its square overflows (1e200) or that it is infinite."""
     with np.errstate(over="ignore", invalid="ignore"):
         data = np.random.default_rng(n).normal(size=(n, 3))
         _, present, _ = kernels.SubjectDraws(n, data, compiled=False).draw(40)
