@@ -10,7 +10,7 @@ from service.records.building import compute_result
 from service.stats import kernels
 
 
-def _request(subjects: int, stratified: bool) -> dict[str, Any]:
+def _request(subjects: int, stratified: bool, replicates: int = 200) -> dict[str, Any]:
     # Constructed, not measured: a three-arm table whose numbers only exercise the code paths
     # (≤ 64 subjects use presence bitsets, more use byte arrays; strata take their own path).
     records = []
@@ -23,7 +23,7 @@ def _request(subjects: int, stratified: bool) -> dict[str, Any]:
     # Normalized like any request, so the warm-up never drifts from the settings' defaults.
     return normalize_request({
         "design": {"test": "T", "reference": "R", "baseline": "B"}, "records": records,
-        "settings": {"replicates": 200, "seed": 1, "stratify_by_sequence": stratified},
+        "settings": {"replicates": replicates, "seed": 1, "stratify_by_sequence": stratified},
     })
 
 
@@ -34,7 +34,12 @@ def prefer_compiled_loops() -> None:
 
 
 def warm_up() -> None:
-    """Runs each compiled loop once (numba compiles it, or reads it from its cache)."""
+    """Runs each compiled loop once (numba compiles it, or reads it from its cache), the ones
+    that let threads share a bootstrap too (streams.py: about 45 ms for the first request big
+    enough to use them, were they left to it)."""
     prefer_compiled_loops()
     for subjects, stratified in ((12, False), (12, True), (70, False), (70, True)):
         compute_result(_request(subjects, stratified))
+    # 70 × 15 000 draws: two blocks of MIN_BLOCK_DRAWS (waves.py), so two threads share it
+    # (asked for, so also on one core); a few milliseconds of drawing.
+    compute_result(_request(70, False, replicates=15_000), threads=2)
