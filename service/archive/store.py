@@ -198,7 +198,7 @@ class Archive:
         # execution layer cost over twenty times the query (about 230 against 10 µs).
         self._reader: Any = None
         self._reader_lock = threading.Lock()
-        self._reader_sql: dict[int, tuple[Any, _Compiled]] = {}
+        self._reader_sql: dict[Select[Any], _Compiled] = {}  # a Select hashes by identity
 
     @classmethod
     def create(cls, url: str, *, busy_timeout_ms: int = 10_000) -> Archive:
@@ -271,11 +271,9 @@ class Archive:
             with self._engine.connect() as conn:
                 row = conn.execute(statement, dict(values or {})).first()
             return None if row is None else row._asdict()
-        entry = self._reader_sql.get(id(statement))
-        if entry is None:
-            # The statement is kept beside its SQL, so its id cannot be taken by another.
-            entry = self._reader_sql.setdefault(id(statement), (statement, _for_sqlite(statement)))
-        compiled = entry[1]
+        compiled = self._reader_sql.get(statement)
+        if compiled is None:
+            compiled = self._reader_sql.setdefault(statement, _for_sqlite(statement))
         parameters = [(values or {})[name] for name in compiled.names]
         with self._reader_lock:
             cursor = self._kept_connection("_reader").execute(compiled.sql, parameters)

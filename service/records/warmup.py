@@ -8,6 +8,7 @@ from typing import Any
 from service.intake.tables import normalize_request
 from service.records.building import compute_result
 from service.stats import kernels
+from service.stats.waves import MIN_BLOCK_DRAWS
 
 
 def _request(subjects: int, stratified: bool, replicates: int = 200) -> dict[str, Any]:
@@ -40,6 +41,8 @@ def warm_up() -> None:
     prefer_compiled_loops()
     for subjects, stratified in ((12, False), (12, True), (70, False), (70, True)):
         compute_result(_request(subjects, stratified))
-    # 70 × 15 000 draws: two blocks of MIN_BLOCK_DRAWS (waves.py), so two threads share it
-    # (asked for, so also on one core); a few milliseconds of drawing.
-    compute_result(_request(70, False, replicates=15_000), threads=2)
+    # Two blocks of waves.MIN_BLOCK_DRAWS draws, so two threads share it (asked for, so also on
+    # one core); a few milliseconds of drawing.
+    subjects = 70
+    compute_result(_request(subjects, False, replicates=-(-2 * MIN_BLOCK_DRAWS // subjects)),
+                   threads=2)
